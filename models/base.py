@@ -1,0 +1,67 @@
+"""The small scorer protocol every model component follows, and shared input handling.
+
+Components learn from and score one window at a time, with a plain ``dict`` of feature name to
+value, and a higher score means more unusual (the convention of river's anomaly detectors).
+
+Examples
+--------
+>>> from models.base import Scorer, split_features
+>>> from models.baseline import AdaptiveBaseline
+>>> isinstance(AdaptiveBaseline(), Scorer)
+True
+>>> names, values = split_features({"b": 2, "a": float("nan"), "c": 0.5})
+>>> names, values.tolist()
+(['b', 'c'], [2.0, 0.5])
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping
+from typing import Protocol, runtime_checkable
+
+import numpy as np
+
+from models.errors import FeatureError
+
+__all__ = ["Scorer", "split_features"]
+
+
+@runtime_checkable
+class Scorer(Protocol):
+    """Anything that learns from and scores one feature mapping at a time."""
+
+    def learn_one(self, x: dict[str, float]) -> None:
+        """Update the model with ``x``."""
+        ...
+
+    def score_one(self, x: dict[str, float]) -> float:
+        """Score ``x`` without learning it; higher means more unusual."""
+        ...
+
+
+def split_features(x: Mapping[str, float]) -> tuple[list[str], np.ndarray]:
+    """Names and float64 values of the usable features of ``x``, in input order.
+
+    Non-finite values (NaN, ±inf) are dropped, i.e. treated as missing: an aggregation over an
+    empty window or a broken exporter must not poison a baseline for good. A key that is not a
+    string or a value that is not a real number raises :class:`~models.errors.FeatureError`.
+    """
+    if not isinstance(x, Mapping):
+        raise FeatureError(f"features must be a mapping of name to number, got {type(x).__name__}")
+    names: list[str] = []
+    values: list[float] = []
+    for name, value in x.items():
+        if not isinstance(name, str):
+            raise FeatureError(f"feature names must be strings, got {name!r}")
+        # bool is an int subclass, but a flag is not a measurement.
+        if isinstance(value, bool) or isinstance(value, (str, bytes)):
+            raise FeatureError(f"feature {name!r} must be a number, got {value!r}")
+        try:
+            v = float(value)
+        except (TypeError, ValueError) as exc:
+            raise FeatureError(f"feature {name!r} must be a number, got {value!r}") from exc
+        if math.isfinite(v):
+            names.append(name)
+            values.append(v)
+    return names, np.array(values, dtype=np.float64)

@@ -1,0 +1,345 @@
+"""Half-space trees in flat numpy arrays.
+
+The algorithm is the one of Tan, Ting & Liu, "Fast anomaly detection for streaming data"
+(IJCAI 2011), with the split rule and scoring of river's ``anomaly.HalfSpaceTrees``:
+
+* each tree is a complete binary tree of ``height`` levels of random axis-parallel splits of the
+  feature space, built once (when the first observation arrives) without looking at the data;
+* every node counts the observations that reached it during the current window (``l_mass``,
+  the "latest" window) and keeps the count of the previous, complete window (``r_mass``, the
+  "reference" window); after ``window_size`` observations the latest counts become the reference
+  and the latest counts restart at zero;
+* an observation's score sums ``r_mass * 2 ** depth`` along its path in every tree, stopping at
+  the first node whose reference mass is below ``0.1 * window_size``, and is flipped and
+  normalised to [0, 1] so that *higher means more unusual*; before the first window is complete
+  there is no reference and the score is 0.
+
+Two split rules are available. ``"padded"`` (default, river's rule) picks a feature with
+probability proportional to the width of its current range and splits uniformly inside the middle
+70 % of that range. ``"work_range"`` is the paper's rule: each tree first draws a random
+*work range* per feature (a random point ``s`` of the feature range, widened to
+``s ± 2 * max(s - low, high - s)``), then every node picks a feature uniformly and splits its
+work range at the mid-point.
+
+The layout is heap order: node ``i`` has children ``2i + 1`` (value < threshold) and ``2i + 2``;
+the ``2 ** height - 1`` internal nodes store a feature index and a float32 threshold, and all
+``2 ** (height + 1) - 1`` nodes store two masses in the smallest unsigned dtype that holds
+``window_size``. At 10 trees of height 8 and a window of 36 that is about 23 KiB per model.
+
+Features are expected in [0, 1] unless ``limits`` says otherwise; the feature set is fixed by the
+first observation learned (sorted names). A feature missing from a later observation is treated
+as the mid-point of its limits, and unknown features are ignored.
+
+Examples
+--------
+>>> from models.hst import HalfSpaceTrees
+>>> hst = HalfSpaceTrees(n_trees=5, height=3, window_size=3, seed=42)
+>>> for x in [0.5, 0.45, 0.43]:
+...     hst.learn_one({"x": x})
+>>> for x in [0.5, 0.45, 0.43, 0.44, 0.445, 0.45, 0.0]:
+...     hst.learn_one({"x": x})
+...     print(f"{x:.3f} {hst.score_one({'x': x}):.3f}")
+0.500 0.143
+0.450 0.143
+0.430 0.143
+0.440 0.143
+0.445 0.143
+0.450 0.143
+0.000 0.857
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping
+from typing import Any
+
+import numpy as np
+
+from models.base import split_features
+from models.errors import CorruptState, SettingsError
+
+__all__ = ["HalfSpaceTrees", "SPLIT_RULES"]
+
+#: Accepted values of ``HalfSpaceTrees(split=...)``.
+SPLIT_RULES: tuple[str, ...] = ("padded", "work_range")
+
+# Share of the range left out on each side by the "padded" rule (river uses the same 0.15).
+_PADDING = 0.15
+# Nodes whose reference mass is below this share of the window stop the scoring walk
+# (Tan, Ting & Liu 2011 use 0.1).
+_SIZE_LIMIT = 0.1
+
+
+def _mass_dtype(window_size: int) -> np.dtype:
+    for dtype in (np.uint8, np.uint16, np.uint32):
+        if window_size <= np.iinfo(dtype).max:
+            return np.dtype(dtype)
+    return np.dtype(np.uint64)
+
+
+def _feature_dtype(n_features: int) -> np.dtype:
+    return np.dtype(np.uint8 if n_features <= 256 else np.uint16 if n_features <= 65536
+                    else np.uint32)
+
+
+class HalfSpaceTrees:
+    """Streaming half-space trees; see the module docstring for the algorithm.
+
+    Parameters
+    ----------
+    n_trees
+        Number of trees.
+    height
+        Number of split levels per tree (a tree has ``2 ** (height + 1) - 1`` nodes).
+    window_size
+        Observations per mass window.
+    limits
+        ``{feature: (low, high)}``; features not listed use ``(0.0, 1.0)``.
+    seed
+        Seed of the numpy ``Generator`` that draws the splits.
+    split
+        ``"padded"`` (river's rule) or ``"work_range"`` (the paper's rule).
+    """
+
+    __slots__ = ("n_trees", "height", "window_size", "limits", "seed", "split",
+                 "features", "_index", "_low", "_high", "_feature", "_threshold",
+                 "_l_mass", "_r_mass", "counter", "_first_window", "_rows", "_weights")
+
+    def __init__(self, n_trees: int = 10, height: int = 8, window_size: int = 250,
+                 limits: Mapping[str, tuple[float, float]] | None = None, seed: int = 0,
+                 split: str = "padded") -> None:
+        for name, value, low in (("n_trees", n_trees, 1), ("height", height, 1),
+                                 ("window_size", window_size, 1), ("seed", seed, 0)):
+            if isinstance(value, bool) or not isinstance(value, int) or value < low:
+                raise SettingsError(f"{name} must be an integer >= {low}, got {value!r}")
+        if height > 24:
+            raise SettingsError(f"height must be <= 24, got {height}")
+        if split not in SPLIT_RULES:
+            raise SettingsError(f"split must be one of {SPLIT_RULES}, got {split!r}")
+        self.n_trees, self.height, self.window_size = n_trees, height, window_size
+        self.seed, self.split = seed, split
+        self.limits: dict[str, tuple[float, float]] = {}
+        for feature, pair in (limits or {}).items():
+            low, high = (float(v) for v in pair)
+            if not (math.isfinite(low) and math.isfinite(high) and low < high):
+                raise SettingsError(f"limits of {feature!r} must be finite with low < high")
+            self.limits[str(feature)] = (low, high)
+        self.features: tuple[str, ...] | None = None  # fixed by the first learn
+        self._index: dict[str, int] = {}
+        self._low = self._high = np.zeros(0)
+        self._feature = np.zeros((0, 0), dtype=np.uint8)
+        self._threshold = np.zeros((0, 0), dtype=np.float32)
+        mass = _mass_dtype(window_size)
+        self._l_mass = np.zeros((0, 0), dtype=mass)
+        self._r_mass = np.zeros((0, 0), dtype=mass)
+        self.counter = 0
+        self._first_window = True
+        self._rows = np.arange(n_trees, dtype=np.intp)[:, None]
+        self._weights = 2.0 ** np.arange(height + 1)
+
+    # ------------------------------------------------------------------ construction
+    @property
+    def n_nodes(self) -> int:
+        """Nodes per tree."""
+        return 2 ** (self.height + 1) - 1
+
+    @property
+    def size_limit(self) -> float:
+        """Reference mass below which the scoring walk stops."""
+        return _SIZE_LIMIT * self.window_size
+
+    @property
+    def max_score(self) -> float:
+        """Largest possible unnormalised mass score."""
+        return float(self.n_trees * self.window_size * self.n_nodes)
+
+    @property
+    def ready(self) -> bool:
+        """Whether a reference window exists (before that every score is 0)."""
+        return not self._first_window
+
+    def build(self, features: list[str] | tuple[str, ...]) -> None:
+        """Draw the trees for ``features`` (done automatically by the first learn)."""
+        names = tuple(sorted(set(features)))
+        if not names:
+            raise SettingsError("half-space trees need at least one feature")
+        self.features = names
+        self._index = {n: i for i, n in enumerate(names)}
+        self._low = np.array([self.limits.get(n, (0.0, 1.0))[0] for n in names])
+        self._high = np.array([self.limits.get(n, (0.0, 1.0))[1] for n in names])
+        n_internal = 2 ** self.height - 1
+        n_f = len(names)
+        rng = np.random.default_rng(self.seed)
+        feature = np.zeros((self.n_trees, n_internal), dtype=_feature_dtype(n_f))
+        threshold = np.zeros((self.n_trees, n_internal), dtype=np.float64)
+        for t in range(self.n_trees):
+            low = np.empty((n_internal, n_f))
+            high = np.empty((n_internal, n_f))
+            if self.split == "padded":
+                low[0], high[0] = self._low, self._high
+            else:
+                s = rng.uniform(self._low, self._high)
+                r = 2.0 * np.maximum(s - self._low, self._high - s)
+                low[0], high[0] = s - r, s + r
+            # Heap order is breadth-first, so a parent's range is set before its children's.
+            for i in range(n_internal):
+                lo, hi = low[i], high[i]
+                if self.split == "padded":
+                    width = hi - lo
+                    f = int(rng.choice(n_f, p=width / width.sum()))
+                    a, b = lo[f], hi[f]
+                    at = rng.uniform(a + _PADDING * (b - a), b - _PADDING * (b - a))
+                else:
+                    f = int(rng.integers(n_f))
+                    at = 0.5 * (lo[f] + hi[f])
+                feature[t, i], threshold[t, i] = f, at
+                left, right = 2 * i + 1, 2 * i + 2
+                if right < n_internal:
+                    low[left], high[left] = lo, hi
+                    high[left, f] = at
+                    low[right], high[right] = lo, hi
+                    low[right, f] = at
+        self._feature = feature
+        self._threshold = threshold.astype(np.float32)
+        mass = _mass_dtype(self.window_size)
+        self._l_mass = np.zeros((self.n_trees, self.n_nodes), dtype=mass)
+        self._r_mass = np.zeros((self.n_trees, self.n_nodes), dtype=mass)
+
+    # ------------------------------------------------------------------ vector API
+    def vectorize(self, x: Mapping[str, float]) -> np.ndarray:
+        """Values of the tree features in ``x`` (missing/non-finite -> mid-point of the limits)."""
+        if self.features is None:
+            raise SettingsError("the trees are not built yet; learn one observation first")
+        v = 0.5 * (self._low + self._high)
+        names, values = split_features(x)
+        index = self._index
+        for name, value in zip(names, values):
+            i = index.get(name)
+            if i is not None:
+                v[i] = value
+        return v
+
+    def _path(self, v: np.ndarray) -> np.ndarray:
+        """Node index at every depth of every tree, shape ``(n_trees, height + 1)``."""
+        rows = self._rows[:, 0]
+        node = np.zeros(self.n_trees, dtype=np.intp)
+        path = np.zeros((self.n_trees, self.height + 1), dtype=np.intp)
+        feature, threshold = self._feature, self._threshold
+        for d in range(1, self.height + 1):
+            go_right = v[feature[rows, node]] >= threshold[rows, node]
+            node = 2 * node + 1 + go_right
+            path[:, d] = node
+        return path
+
+    def _score_path(self, path: np.ndarray) -> float:
+        if self._first_window:
+            return 0.0
+        r = self._r_mass[self._rows, path].astype(np.float64)
+        below = r < self.size_limit
+        # Keep every node up to and including the first one under the size limit.
+        keep = (np.cumsum(below, axis=1) - below) == 0
+        score = float(np.sum(r * self._weights * keep))
+        return 1.0 - score / self.max_score
+
+    def _learn_path(self, path: np.ndarray) -> None:
+        self._l_mass[self._rows, path] += 1
+        self.counter += 1
+        if self.counter == self.window_size:
+            self._r_mass[...] = self._l_mass
+            self._l_mass[...] = 0
+            self._first_window = False
+            self.counter = 0
+
+    def score_vector(self, v: np.ndarray) -> float:
+        """Score a vector from :meth:`vectorize` without learning it."""
+        return self._score_path(self._path(v))
+
+    def learn_vector(self, v: np.ndarray) -> None:
+        """Learn a vector from :meth:`vectorize`."""
+        self._learn_path(self._path(v))
+
+    def score_learn_vector(self, v: np.ndarray) -> float:
+        """Score, then learn, one vector; walks each tree once."""
+        path = self._path(v)
+        score = self._score_path(path)
+        self._learn_path(path)
+        return score
+
+    # ------------------------------------------------------------------ Scorer protocol
+    def learn_one(self, x: Mapping[str, float]) -> None:
+        """Learn one observation; the first one fixes the feature set and builds the trees."""
+        if self.features is None:
+            self.build(split_features(x)[0])
+        self.learn_vector(self.vectorize(x))
+
+    def score_one(self, x: Mapping[str, float]) -> float:
+        """Anomaly score in [0, 1] of ``x`` (0.0 until the first window is complete)."""
+        if self.features is None or self._first_window:
+            return 0.0
+        return self.score_vector(self.vectorize(x))
+
+    # ------------------------------------------------------------------ state
+    def to_state(self) -> dict[str, Any]:
+        """Plain-dict state; the trees and masses are numpy arrays."""
+        state: dict[str, Any] = {
+            "n_trees": self.n_trees, "height": self.height, "window_size": self.window_size,
+            "limits": {k: list(v) for k, v in self.limits.items()}, "seed": self.seed,
+            "split": self.split, "features": None if self.features is None else list(self.features),
+            "counter": self.counter, "first_window": self._first_window,
+        }
+        if self.features is not None:
+            state.update(feature=self._feature.copy(), threshold=self._threshold.copy(),
+                         l_mass=self._l_mass.copy(), r_mass=self._r_mass.copy())
+        return state
+
+    @classmethod
+    def from_state(cls, state: Mapping[str, Any]) -> HalfSpaceTrees:
+        """Rebuild from :meth:`to_state` output; malformed states raise ``CorruptState``."""
+        try:
+            hst = cls(state["n_trees"], state["height"], state["window_size"],
+                      limits={k: tuple(v) for k, v in state["limits"].items()},
+                      seed=state["seed"], split=state["split"])
+            features, counter, first = state["features"], state["counter"], state["first_window"]
+            if not isinstance(first, bool) or isinstance(counter, bool) or not isinstance(counter, int):
+                raise CorruptState("counter must be an int and first_window a bool")
+            if not 0 <= counter < hst.window_size:
+                raise CorruptState(f"counter {counter} outside [0, window_size)")
+            if features is None:
+                if counter or not first:
+                    raise CorruptState("trees that were never built cannot have learned")
+                return hst
+            if not isinstance(features, list) or not all(isinstance(f, str) for f in features):
+                raise CorruptState("features must be a list of names")
+            # The split draws are not replayed: the stored arrays are the trees.
+            names = tuple(sorted(set(features)))
+            if not names or list(names) != features:
+                raise CorruptState("features must be distinct, sorted and non-empty")
+            n_internal = 2 ** hst.height - 1
+            mass = _mass_dtype(hst.window_size)
+            expect = {
+                "feature": ((hst.n_trees, n_internal), _feature_dtype(len(names))),
+                "threshold": ((hst.n_trees, n_internal), np.dtype(np.float32)),
+                "l_mass": ((hst.n_trees, hst.n_nodes), mass),
+                "r_mass": ((hst.n_trees, hst.n_nodes), mass),
+            }
+            arrays = {}
+            for key, (shape, dtype) in expect.items():
+                arr = state[key]
+                if not isinstance(arr, np.ndarray) or arr.shape != shape or arr.dtype != dtype:
+                    raise CorruptState(f"{key!r} must be a {dtype} array of shape {shape}")
+                arrays[key] = arr.copy()
+        except (KeyError, TypeError, ValueError, AttributeError, SettingsError) as exc:
+            raise CorruptState(f"malformed half-space-trees state: {exc}") from exc
+        if arrays["feature"].size and int(arrays["feature"].max()) >= len(names):
+            raise CorruptState("a split refers to a feature that does not exist")
+        if not np.isfinite(arrays["threshold"]).all():
+            raise CorruptState("split thresholds must be finite")
+        hst.features = names
+        hst._index = {n: i for i, n in enumerate(names)}
+        hst._low = np.array([hst.limits.get(n, (0.0, 1.0))[0] for n in names])
+        hst._high = np.array([hst.limits.get(n, (0.0, 1.0))[1] for n in names])
+        hst._feature, hst._threshold = arrays["feature"], arrays["threshold"]
+        hst._l_mass, hst._r_mass = arrays["l_mass"], arrays["r_mass"]
+        hst.counter, hst._first_window = counter, first
+        return hst

@@ -1,0 +1,140 @@
+"""Settings shared by every per-service model.
+
+Examples
+--------
+>>> from models.settings import ModelSettings
+>>> ModelSettings().kind
+'combined'
+>>> ModelSettings(kind="adaptive_baseline", warm_up=10).warm_up
+10
+>>> ModelSettings(threshold=1.5)
+Traceback (most recent call last):
+...
+models.errors.SettingsError: threshold must be in (0, 1], got 1.5
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import asdict, dataclass, fields
+from typing import Any
+
+from models.errors import SettingsError
+
+__all__ = ["MODEL_KINDS", "ModelSettings"]
+
+#: Names accepted by ``ModelSettings.kind``.
+MODEL_KINDS: tuple[str, ...] = ("half_space_trees", "adaptive_baseline", "combined")
+
+# Beyond this height a single tree holds 2**17 - 1 nodes per window buffer; the per-service state
+# would no longer be small, which is the point of the array layout.
+_MAX_HEIGHT = 16
+
+
+def _check_int(name: str, value: Any, low: int, high: int | None = None) -> None:
+    # bool is a subclass of int; ``trees=True`` is a mistake, not a count.
+    if isinstance(value, bool) or not isinstance(value, int):
+        raise SettingsError(f"{name} must be an integer, got {value!r}")
+    if value < low or (high is not None and value > high):
+        bound = f">= {low}" if high is None else f"in [{low}, {high}]"
+        raise SettingsError(f"{name} must be {bound}, got {value}")
+
+
+def _check_real(name: str, value: Any) -> float:
+    if isinstance(value, bool) or not isinstance(value, (int, float)):
+        raise SettingsError(f"{name} must be a number, got {value!r}")
+    value = float(value)
+    if not math.isfinite(value):
+        raise SettingsError(f"{name} must be finite, got {value}")
+    return value
+
+
+@dataclass(frozen=True, slots=True)
+class ModelSettings:
+    """How a service's model is built.
+
+    Parameters
+    ----------
+    kind
+        ``"half_space_trees"``, ``"adaptive_baseline"`` or ``"combined"`` (both, see
+        :func:`models.build_model`).
+    threshold
+        Calibrated score at or above which a warmed-up window is anomalous, in (0, 1].
+    warm_up
+        Number of windows that are learned before any window can be flagged.
+    trees, height, mass_window
+        Half-space trees: number of trees, depth of each tree and the number of windows per
+        reference-mass window ("window size" in Tan, Ting & Liu 2011).
+    half_life
+        Half-life, in windows, of the exponentially weighted baseline; the smoothing factor is
+        ``alpha = 1 - 0.5 ** (1 / half_life)``.
+    calibration_history
+        Number of past raw scores kept per service to calibrate new ones.
+    seed
+        Non-negative integer combined with a stable hash of the service name.
+    """
+
+    kind: str = "combined"
+    threshold: float = 0.99
+    warm_up: int = 36
+    trees: int = 10
+    height: int = 8
+    mass_window: int = 36
+    half_life: float = 24.0
+    calibration_history: int = 1000
+    seed: int = 0
+
+    def __post_init__(self) -> None:
+        if self.kind not in MODEL_KINDS:
+            raise SettingsError(f"kind must be one of {', '.join(MODEL_KINDS)}; got {self.kind!r}")
+        threshold = _check_real("threshold", self.threshold)
+        if not 0.0 < threshold <= 1.0:
+            raise SettingsError(f"threshold must be in (0, 1], got {threshold}")
+        half_life = _check_real("half_life", self.half_life)
+        if half_life <= 0.0:
+            raise SettingsError(f"half_life must be > 0 windows, got {half_life}")
+        _check_int("warm_up", self.warm_up, 0)
+        _check_int("trees", self.trees, 1)
+        _check_int("height", self.height, 1, _MAX_HEIGHT)
+        _check_int("mass_window", self.mass_window, 1)
+        _check_int("calibration_history", self.calibration_history, 1)
+        _check_int("seed", self.seed, 0)
+        # Store the real-valued fields as float so a saved state reads back identically.
+        object.__setattr__(self, "threshold", threshold)
+        object.__setattr__(self, "half_life", half_life)
+
+    @property
+    def alpha(self) -> float:
+        """Smoothing factor of the baseline EWMA implied by ``half_life``.
+
+        >>> round(ModelSettings(half_life=1.0).alpha, 3)
+        0.5
+        """
+        return 1.0 - 0.5 ** (1.0 / self.half_life)
+
+    def to_dict(self) -> dict[str, Any]:
+        """Plain-dict form, used in saved states.
+
+        >>> ModelSettings().to_dict()["trees"]
+        10
+        """
+        return asdict(self)
+
+    @classmethod
+    def from_dict(cls, data: dict[str, Any]) -> ModelSettings:
+        """Inverse of :meth:`to_dict`; unknown keys are refused.
+
+        >>> ModelSettings.from_dict({"kind": "adaptive_baseline"}).kind
+        'adaptive_baseline'
+        >>> ModelSettings.from_dict({"colour": "red"})
+        Traceback (most recent call last):
+        ...
+        models.errors.SettingsError: unknown setting(s): colour
+        """
+        if not isinstance(data, dict):
+            raise SettingsError(f"settings must be a mapping, got {type(data).__name__}")
+        known = {f.name for f in fields(cls)}
+        unknown = sorted(set(data) - known)
+        if unknown:
+            raise SettingsError(f"unknown setting(s): {', '.join(map(str, unknown))}")
+        return cls(**data)

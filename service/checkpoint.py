@@ -1,0 +1,266 @@
+"""Checkpoints of learned state in a local directory (embedded mode).
+
+A checkpoint is one *segment* file written atomically (temporary file, fsync,
+rename): the models that changed since the previous checkpoint plus one runtime
+record (input and output positions, watermarks and open windows). The rename is
+the commit, so a crash leaves either the old set of segments or the new one.
+Restoring reads segments in generation order from the newest *base* segment (a
+full snapshot) and lets the last record of each service win. When the deltas
+grow past a few times the base, a new base is written and older segments go.
+
+Segment layout (all integers little-endian)::
+
+    b"TWCK" | u16 format | u8 flags (1 = base) | u64 generation
+    frame*  : u8 kind (1 model, 2 runtime) | u32 length | u32 crc32(payload) | payload
+    trailer : u8 0xFF | u32 crc32(everything before the trailer)
+
+Model payloads are ``models.encode_state`` records, which carry their own format
+version, checksum and optional HMAC; runtime payloads are JSON. A frame or record
+that fails its check is reported, counted, and skipped: that service starts
+fresh; the file is set aside as ``*.corrupt``. Nothing is ever unpickled.
+"""
+
+from __future__ import annotations
+
+import logging
+import os
+import re
+import struct
+import time
+import zlib
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import orjson
+
+from models import ServiceModel, decode_state, encode_state
+from models.errors import StateError
+from service.errors import StateStoreError
+from service.stats import RuntimeStats
+
+__all__ = ["CheckpointStore", "Restored", "SEGMENT_FORMAT"]
+
+log = logging.getLogger("tidewatch.checkpoint")
+
+SEGMENT_FORMAT = 1
+_MAGIC = b"TWCK"
+_HEADER = struct.Struct("<4sHBQ")
+_FRAME = struct.Struct("<BII")
+_TRAILER = struct.Struct("<BI")
+_KIND_MODEL, _KIND_RUNTIME, _KIND_END = 1, 2, 0xFF
+_NAME = re.compile(r"^ckpt-(\d{12})\.twc$")
+# A new base is written once the deltas since the last base are this many times its size.
+_COMPACT_RATIO = 3.0
+
+
+@dataclass
+class Restored:
+    """What a restore found."""
+
+    models: dict[str, ServiceModel] = field(default_factory=dict)
+    runtime: dict[str, Any] | None = None
+    refused: list[str] = field(default_factory=list)  # one human line per refused record or file
+    generation: int = 0
+
+
+class CheckpointStore:
+    """Segment files in ``directory``.
+
+    Parameters
+    ----------
+    directory
+        Created if missing.
+    key
+        HMAC key for model records; when set, unsigned or wrongly signed records are refused.
+    """
+
+    def __init__(self, directory: str | os.PathLike[str], *, stats: RuntimeStats, key: bytes | None = None) -> None:
+        self.dir = Path(directory)
+        self.key = key
+        self.stats = stats
+        self.generation = 0
+        self._base_bytes = 0
+        self._delta_bytes = 0
+        self._force_base = False  # after a refused record, the next checkpoint rewrites everything
+        try:
+            self.dir.mkdir(parents=True, exist_ok=True)
+        except OSError as exc:
+            raise StateStoreError(f"cannot create the state directory {self.dir}: {exc}") from exc
+
+    # --- reading ---------------------------------------------------------------------
+    def _segments(self) -> list[tuple[int, Path]]:
+        out = []
+        for p in self.dir.iterdir():
+            m = _NAME.match(p.name)
+            if m:
+                out.append((int(m.group(1)), p))
+        out.sort()
+        return out
+
+    def _refuse(self, restored: Restored, kind: str, line: str) -> None:
+        self._force_base = True
+        self.stats.state_records_refused[kind] += 1
+        restored.refused.append(line)
+        log.warning("state record refused", extra={"event": "state_refused", "kind": kind, "detail": line})
+
+    def load(self) -> Restored:
+        """Read the newest base and every later segment; never raises on bad content."""
+        restored = Restored()
+        segments = self._segments()
+        parsed: list[tuple[int, Path, bool, list[tuple[int, bytes]], bool]] = []
+        for gen, path in segments:
+            try:
+                data = path.read_bytes()
+            except OSError as exc:
+                self._refuse(restored, "unreadable", f"{path}: cannot read: {exc}")
+                continue
+            is_base, frames, intact = self._parse(path, data, restored)
+            parsed.append((gen, path, is_base, frames, intact))
+        start = 0
+        for i, item in enumerate(parsed):
+            if item[2]:
+                start = i
+        for gen, path, is_base, frames, intact in parsed[start:]:
+            for kind, payload in frames:
+                if kind == _KIND_MODEL:
+                    try:
+                        service, model = decode_state(payload, key=self.key)
+                    except StateError as exc:
+                        self._refuse(restored, type(exc).__name__, f"{path}: a model record was refused: {exc}")
+                        continue
+                    restored.models[service] = model
+                elif kind == _KIND_RUNTIME:
+                    try:
+                        restored.runtime = orjson.loads(payload)
+                    except orjson.JSONDecodeError as exc:
+                        self._refuse(restored, "CorruptState", f"{path}: the runtime record is not JSON: {exc}")
+            if not intact:
+                self._set_aside(path)
+            restored.generation = gen
+            sz = sum(len(p) for _, p in frames)
+            if is_base:
+                self._base_bytes, self._delta_bytes = sz, 0
+            else:
+                self._delta_bytes += sz
+        self.generation = restored.generation
+        return restored
+
+    def _parse(self, path: Path, data: bytes, restored: Restored) -> tuple[bool, list[tuple[int, bytes]], bool]:
+        frames: list[tuple[int, bytes]] = []
+        if len(data) < _HEADER.size:
+            self._refuse(restored, "CorruptState", f"{path}: truncated before the header")
+            return False, frames, False
+        magic, fmt, flags, _gen = _HEADER.unpack_from(data, 0)
+        if magic != _MAGIC:
+            self._refuse(restored, "CorruptState", f"{path}: not a tidewatch checkpoint (bad magic)")
+            return False, frames, False
+        if fmt > SEGMENT_FORMAT:
+            self._refuse(restored, "UnsupportedStateVersion", f"{path}: segment format {fmt} is newer than {SEGMENT_FORMAT}")
+            return False, frames, False
+        pos = _HEADER.size
+        intact = False
+        while pos < len(data):
+            kind = data[pos]
+            if kind == _KIND_END:
+                if pos + _TRAILER.size <= len(data):
+                    _, crc = _TRAILER.unpack_from(data, pos)
+                    intact = crc == zlib.crc32(data[:pos])
+                break
+            if pos + _FRAME.size > len(data):
+                break
+            kind, length, crc = _FRAME.unpack_from(data, pos)
+            pos += _FRAME.size
+            payload = data[pos : pos + length]
+            pos += length
+            if len(payload) != length:
+                break
+            if zlib.crc32(payload) != crc:
+                self._refuse(restored, "CorruptState", f"{path}: a record failed its checksum")
+                continue
+            frames.append((kind, payload))
+        if not intact:
+            self._refuse(restored, "CorruptState", f"{path}: the segment is truncated or its checksum does not match")
+        return bool(flags & 1), frames, intact
+
+    def _set_aside(self, path: Path) -> None:
+        target = path.with_name(f"{path.name}.corrupt-{int(time.time())}")
+        try:
+            path.rename(target)
+            log.error("corrupt checkpoint set aside", extra={"event": "state_set_aside", "path": str(target)})
+        except OSError:
+            pass
+
+    # --- writing ---------------------------------------------------------------------
+    def save(self, models: dict[str, ServiceModel], dirty: set[str], runtime: dict[str, Any]) -> int:
+        """Write one checkpoint of the ``dirty`` models and the runtime record.
+
+        Returns the bytes written. Raises :class:`StateStoreError` when the
+        directory refuses the write; the previous checkpoints stay intact.
+        """
+        started = time.perf_counter()
+        base = self._force_base or self.generation == 0 or self._delta_bytes > _COMPACT_RATIO * max(self._base_bytes, 1)
+        names = models.keys() if base else sorted(dirty)
+        gen = self.generation + 1
+        parts = [_HEADER.pack(_MAGIC, SEGMENT_FORMAT, 1 if base else 0, gen)]
+        model_bytes = 0
+        for service in names:
+            model = models.get(service)
+            if model is None:
+                continue
+            payload = encode_state(service, model, key=self.key)
+            model_bytes += len(payload)
+            parts.append(_FRAME.pack(_KIND_MODEL, len(payload), zlib.crc32(payload)))
+            parts.append(payload)
+        rt = orjson.dumps(runtime)
+        parts.append(_FRAME.pack(_KIND_RUNTIME, len(rt), zlib.crc32(rt)))
+        parts.append(rt)
+        body = b"".join(parts)
+        data = body + _TRAILER.pack(_KIND_END, zlib.crc32(body))
+        final = self.dir / f"ckpt-{gen:012d}.twc"
+        tmp = self.dir / f".ckpt-{gen:012d}.tmp"
+        try:
+            with open(tmp, "wb") as f:
+                f.write(data)
+                f.flush()
+                os.fsync(f.fileno())
+            os.replace(tmp, final)
+            _fsync_dir(self.dir)
+        except OSError as exc:
+            self.stats.state_save_failures += 1
+            try:
+                tmp.unlink(missing_ok=True)
+            except OSError:
+                pass
+            raise StateStoreError(f"cannot write checkpoint {final}: {exc}") from exc
+        self.generation = gen
+        if base:
+            self._force_base = False
+            self._base_bytes, self._delta_bytes = model_bytes + len(rt), 0
+            for g, p in self._segments():
+                if g < gen:
+                    try:
+                        p.unlink()
+                    except OSError:
+                        pass
+        else:
+            self._delta_bytes += model_bytes + len(rt)
+        elapsed = time.perf_counter() - started
+        self.stats.state_saves += 1
+        self.stats.last_save_seconds = elapsed
+        self.stats.save_seconds.observe(elapsed)
+        return len(data)
+
+
+def _fsync_dir(path: Path) -> None:
+    # The rename is only durable once the directory entry is on disk.
+    try:
+        fd = os.open(path, os.O_RDONLY)
+    except OSError:
+        return
+    try:
+        os.fsync(fd)
+    except OSError:
+        pass
+    finally:
+        os.close(fd)

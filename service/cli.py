@@ -1,0 +1,173 @@
+"""The ``tidewatch`` command line.
+
+Exit codes
+----------
+0  success
+1  runtime failure (an output or the state directory refused a write, input unreadable)
+2  usage error or invalid config
+3  fatal message-bus error (e.g. the producer was fenced); the orchestrator should restart
+130  stopped by a second interrupt before a clean shutdown finished
+"""
+
+from __future__ import annotations
+
+import argparse
+import logging
+import os
+import signal
+import sys
+import threading
+from collections.abc import Sequence
+
+from service.config import Config, load_config
+from service.errors import BusFatalError, ConfigError, TidewatchError
+from service.logs import configure_logging
+from service.timefmt import parse_duration
+
+__all__ = ["main", "EXIT_OK", "EXIT_FAILURE", "EXIT_USAGE", "EXIT_BUS_FATAL", "EXIT_INTERRUPTED"]
+
+EXIT_OK, EXIT_FAILURE, EXIT_USAGE, EXIT_BUS_FATAL, EXIT_INTERRUPTED = 0, 1, 2, 3, 130
+
+log = logging.getLogger("tidewatch.cli")
+
+EPILOG = "exit codes: 0 ok, 1 runtime failure, 2 usage or config error, 3 fatal bus error, 130 interrupted twice"
+
+
+def _override_window(config: Config, window: float) -> Config:
+    rules = tuple(r.model_copy(update={"window": None}) for r in config.rules)
+    return config.model_copy(update={"defaults": config.defaults.model_copy(update={"window": window}), "rules": rules})
+
+
+def _install_stop_handlers(stop: threading.Event) -> None:
+    def handler(signum: int, frame: object) -> None:
+        if stop.is_set():
+            # Second signal: the operator wants out now.
+            os._exit(EXIT_INTERRUPTED)
+        log.info("stop requested; finishing the batch and checkpointing", extra={"event": "stop_requested", "signal": signum})
+        stop.set()
+
+    signal.signal(signal.SIGTERM, handler)
+    signal.signal(signal.SIGINT, handler)
+
+
+def _state_key() -> bytes | None:
+    value = os.environ.get("TIDEWATCH_STATE_KEY")
+    return value.encode() if value else None
+
+
+def cmd_run(args: argparse.Namespace) -> int:
+    from service.embedded import RunOptions, run_embedded
+
+    config = load_config(args.config)
+    stop = threading.Event()
+    _install_stop_handlers(stop)
+    opts = RunOptions(
+        input=args.input,
+        output=args.output,
+        rejects=args.rejects,
+        state_dir=args.state_dir,
+        follow=args.follow,
+        http_listen=args.listen,
+        state_key=_state_key(),
+    )
+    summary = run_embedded(config, opts, stop)
+    log.info(summary.describe(), extra={"event": "run_finished", "windows": summary.windows, "flagged": summary.flagged})
+    return EXIT_OK
+
+
+def cmd_replay(args: argparse.Namespace) -> int:
+    from service.embedded import replay
+
+    config = load_config(args.config)
+    if args.window is not None:
+        try:
+            config = _override_window(config, parse_duration(args.window))
+        except ValueError as exc:
+            raise ConfigError(f"--window: {exc}") from exc
+    summary = replay(config, args.input, args.output, args.rejects)
+    print(summary.describe(), file=sys.stderr)
+    return EXIT_OK
+
+
+def cmd_demo(args: argparse.Namespace) -> int:
+    from service.demo import run_demo
+
+    return run_demo(seed=args.seed, days=args.days, out_dir=args.out_dir, config_path=args.config)
+
+
+def cmd_check_config(args: argparse.Namespace) -> int:
+    config = load_config(args.file)
+    print(f"{args.file}: ok ({len(config.rules)} rule(s))")
+    for service in args.services:
+        print(f"{service}: {config.settings_for(service).describe()}")
+    return EXIT_OK
+
+
+def build_parser() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(
+        prog="tidewatch",
+        description="Score every time window of every service's metrics for how unusual it is.",
+        epilog=EPILOG,
+    )
+    p.add_argument("--log-level", default=None, help="debug, info, warning or error (default: $TIDEWATCH_LOG_LEVEL or info)")
+    sub = p.add_subparsers(dest="command", required=True, metavar="COMMAND")
+
+    r = sub.add_parser("run", help="score a live stream until stopped", epilog=EPILOG,
+                       description="Score a live stream. Embedded mode reads JSON lines from --input; learned state and "
+                       "positions are saved to the state directory and restored on the next start.")
+    r.add_argument("--config", help="config file (TOML); built-in defaults when omitted")
+    r.add_argument("--input", default="-", help="input JSON lines: a file, or - for stdin (default)")
+    r.add_argument("--output", default="-", help="score messages as JSON lines: a file, or - for stdout (default)")
+    r.add_argument("--rejects", default=None, help="rejected messages with their reasons: a file, or - for stdout")
+    r.add_argument("--state-dir", default=None, help="state directory (default: the config's state.dir)")
+    r.add_argument("--follow", action="store_true", help="at the end of the input file, wait for more lines")
+    r.add_argument("--listen", default=None, help="host:port for /metrics, /healthz, /readyz; '' turns it off")
+    r.set_defaults(func=cmd_run)
+
+    rp = sub.add_parser("replay", help="score a recorded file as fast as possible", epilog=EPILOG,
+                        description="Score a recorded file of JSON lines from fresh models and flush every window at the end.")
+    rp.add_argument("input", metavar="INPUT", help="recorded JSON lines, or - for stdin")
+    rp.add_argument("--output", required=True, metavar="SCORES", help="score messages as JSON lines (- for stdout)")
+    rp.add_argument("--window", default=None, metavar="DURATION", help="window length for every service, e.g. 5m")
+    rp.add_argument("--config", default=None, help="config file (TOML)")
+    rp.add_argument("--rejects", default=None, help="where rejected lines go, with their reasons")
+    rp.set_defaults(func=cmd_replay)
+
+    d = sub.add_parser("demo", help="generate the demo scenario, score it, and report what was caught", epilog=EPILOG)
+    d.add_argument("--seed", type=int, default=7, help="scenario seed (default 7)")
+    d.add_argument("--days", type=float, default=7.0, help="simulated days (default 7)")
+    d.add_argument("--out-dir", default="demo-output", help="where the scenario, scores and rejects are written")
+    d.add_argument("--config", default=None, help="config file (default: the demo's own settings)")
+    d.set_defaults(func=cmd_demo)
+
+    c = sub.add_parser("check-config", help="validate a config file and show the rule each service gets", epilog=EPILOG)
+    c.add_argument("file", metavar="FILE")
+    c.add_argument("services", nargs="*", metavar="SERVICE")
+    c.set_defaults(func=cmd_check_config)
+    return p
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    configure_logging(args.log_level)
+    try:
+        return args.func(args)
+    except ConfigError as exc:
+        print(f"tidewatch: {exc}", file=sys.stderr)
+        return EXIT_USAGE
+    except BusFatalError as exc:
+        log.critical(str(exc), extra={"event": "bus_fatal"})
+        return EXIT_BUS_FATAL
+    except TidewatchError as exc:
+        log.error(str(exc), extra={"event": "failed"})
+        return EXIT_FAILURE
+    except OSError as exc:
+        log.error(str(exc), extra={"event": "failed"})
+        return EXIT_FAILURE
+    except KeyboardInterrupt:
+        return EXIT_INTERRUPTED
+
+
+if __name__ == "__main__":
+    sys.exit(main())

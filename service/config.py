@@ -1,0 +1,286 @@
+"""The tidewatch config file: pydantic models, loading, and rule resolution.
+
+One TOML file holds the runtime settings and an ordered list of per-service rules.
+A service gets the settings of ``[defaults]`` overlaid with the first rule whose
+``match`` glob matches its name. Validation happens here, at the edge; the hot path
+only ever sees the frozen, plain :class:`ServiceSettings` that :func:`resolve` returns.
+
+>>> cfg = parse_config('''
+... [defaults]
+... window = "5m"
+... [[rules]]
+... match = "ticket-*"
+... threshold = 0.995
+... ''')
+>>> s = cfg.settings_for("ticket-api")
+>>> s.window, s.model.threshold, s.rule_index
+(300.0, 0.995, 0)
+>>> cfg.settings_for("berth-planner").rule_index is None
+True
+"""
+
+from __future__ import annotations
+
+import fnmatch
+import os
+import tomllib
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Annotated, Any, Literal
+
+from pydantic import BaseModel, BeforeValidator, ConfigDict, Field, ValidationError, field_validator
+
+from models import MODEL_KINDS, ModelSettings
+from service.errors import ConfigError
+from service.timefmt import format_duration, parse_duration
+from service.windows import FeatureSpec
+
+__all__ = [
+    "Config",
+    "Defaults",
+    "Rule",
+    "ModelParams",
+    "StateConfig",
+    "HttpConfig",
+    "LimitsConfig",
+    "ServiceSettings",
+    "FeatureSpec",
+    "load_config",
+    "parse_config",
+    "DEFAULT_FEATURES",
+]
+
+AGGREGATES = ("mean", "sum", "min", "max", "last", "count")
+DEFAULT_FEATURES = ("*:mean", "count")
+
+
+def _duration(value: Any) -> float:
+    try:
+        return parse_duration(value)
+    except ValueError as exc:
+        raise ValueError(str(exc)) from None
+
+
+Duration = Annotated[float, BeforeValidator(_duration)]
+
+
+class _Frozen(BaseModel):
+    model_config = ConfigDict(extra="forbid", frozen=True, str_strip_whitespace=True)
+
+
+class ModelParams(_Frozen):
+    """Model parameters; each is optional so a rule can override one at a time."""
+
+    trees: int | None = Field(None, ge=1, le=100, description="Half-space trees: number of trees.")
+    height: int | None = Field(None, ge=1, le=15, description="Half-space trees: depth of each tree.")
+    mass_window: int | None = Field(
+        None, ge=4, le=100_000, description="Half-space trees: windows per reference-mass window."
+    )
+    half_life: float | None = Field(
+        None, gt=0, le=1e6, description="Adaptive baseline: half-life of the exponential weights, in windows."
+    )
+    calibration_history: int | None = Field(
+        None, ge=10, le=100_000, description="How many past raw scores calibrate a new one."
+    )
+
+
+def _check_features(value: tuple[str, ...]) -> tuple[str, ...]:
+    for item in value:
+        if item == "count":
+            continue
+        metric, sep, agg = item.rpartition(":")
+        if not sep or not metric:
+            raise ValueError(
+                f"feature {item!r} must be 'count' or '<metric glob>:<aggregate>', e.g. '*:mean' or 'latency_p95_ms:max'"
+            )
+        if agg not in AGGREGATES:
+            raise ValueError(f"feature {item!r}: aggregate {agg!r} is not one of {', '.join(AGGREGATES)}")
+    if not value:
+        raise ValueError("at least one feature is required")
+    return value
+
+
+class Defaults(_Frozen):
+    """Settings every service gets unless a rule overrides them."""
+
+    window: Duration = Field(60.0, gt=0, description="Tumbling window length, e.g. '1m', '5m'.")
+    lateness: Duration = Field(
+        10.0, ge=0, description="How far behind the newest event time an event may arrive and still count."
+    )
+    features: tuple[str, ...] = Field(DEFAULT_FEATURES, description="Features handed to the model per window.")
+    model: Literal[MODEL_KINDS] = Field("combined", description="Model kind.")  # type: ignore[valid-type]
+    threshold: float = Field(0.99, gt=0, le=1, description="Calibrated score at or above which a window is anomalous.")
+    warm_up: int = Field(36, ge=0, le=100_000, description="Windows a new model only learns before it may flag.")
+    seed: int = Field(0, ge=0, lt=2**32, description="Seed mixed with each service name for the model's randomness.")
+    params: ModelParams = Field(default_factory=ModelParams, description="Model parameters.")
+
+    @field_validator("features")
+    @classmethod
+    def _features(cls, v: tuple[str, ...]) -> tuple[str, ...]:
+        return _check_features(v)
+
+
+class Rule(_Frozen):
+    """One per-service rule: a glob and the settings it overrides."""
+
+    match: str = Field(min_length=1, description="Glob over service names, e.g. 'ticket-*'.")
+    window: Duration | None = Field(None, gt=0)
+    lateness: Duration | None = Field(None, ge=0)
+    features: tuple[str, ...] | None = None
+    model: Literal[MODEL_KINDS] | None = None  # type: ignore[valid-type]
+    threshold: float | None = Field(None, gt=0, le=1)
+    warm_up: int | None = Field(None, ge=0, le=100_000)
+    seed: int | None = Field(None, ge=0, lt=2**32)
+    params: ModelParams | None = None
+
+    @field_validator("features")
+    @classmethod
+    def _features(cls, v: tuple[str, ...] | None) -> tuple[str, ...] | None:
+        return None if v is None else _check_features(v)
+
+
+class StateConfig(_Frozen):
+    """Where and how often learned state is saved."""
+
+    dir: str = Field("tidewatch-state", description="Local state directory (embedded mode).")
+    checkpoint_interval: Duration = Field(30.0, gt=0, description="How often state and positions are saved.")
+
+
+class HttpConfig(_Frozen):
+    """The metrics and health endpoint."""
+
+    listen: str = Field("127.0.0.1:9464", description="host:port for /metrics, /healthz and /readyz; '' disables it.")
+
+
+class LimitsConfig(_Frozen):
+    """Input limits; a message beyond them is rejected with a reason."""
+
+    max_message_bytes: int = Field(65_536, ge=64, description="Largest accepted message.")
+    max_service_name: int = Field(200, ge=1, le=10_000, description="Longest accepted service name, in characters.")
+    max_metrics: int = Field(256, ge=1, le=100_000, description="Most metrics accepted in one message.")
+    max_future_skew: Duration = Field(
+        86_400.0, ge=0, description="How far past the wall clock an event time may lie."
+    )
+    max_service_series: int = Field(
+        5_000, ge=0, description="Most services exported as per-service Prometheus series."
+    )
+
+
+class Config(_Frozen):
+    """The whole config file."""
+
+    defaults: Defaults = Field(default_factory=Defaults)
+    rules: tuple[Rule, ...] = ()
+    state: StateConfig = Field(default_factory=StateConfig)
+    http: HttpConfig = Field(default_factory=HttpConfig)
+    limits: LimitsConfig = Field(default_factory=LimitsConfig)
+
+    def settings_for(self, service: str) -> "ServiceSettings":
+        """The resolved settings of one service (first matching rule wins)."""
+        return resolve(self, service)
+
+
+@dataclass(frozen=True, slots=True)
+class ServiceSettings:
+    """What the runtime needs for one service, plain and frozen (no pydantic on the hot path)."""
+
+    window: float
+    lateness: float
+    features: tuple[FeatureSpec, ...]
+    model: ModelSettings
+    rule_index: int | None  # index into Config.rules, None for the defaults
+    rule_match: str | None
+
+    def describe(self) -> str:
+        rule = "defaults" if self.rule_index is None else f"rule #{self.rule_index + 1} (match {self.rule_match!r})"
+        m = self.model
+        feats = ", ".join("count" if f.metric_glob is None else f"{f.metric_glob}:{f.aggregate}" for f in self.features)
+        return (
+            f"{rule}: window {format_duration(self.window)}, lateness {format_duration(self.lateness)}, "
+            f"model {m.kind} (trees {m.trees}, height {m.height}, mass_window {m.mass_window}, "
+            f"half_life {m.half_life:g}, calibration_history {m.calibration_history}), "
+            f"threshold {m.threshold:g}, warm_up {m.warm_up}, seed {m.seed}, features [{feats}]"
+        )
+
+
+def _compile_features(items: tuple[str, ...]) -> tuple[FeatureSpec, ...]:
+    out = []
+    for item in items:
+        if item == "count":
+            out.append(FeatureSpec(None, "count"))
+        else:
+            glob, _, agg = item.rpartition(":")
+            out.append(FeatureSpec(glob, agg))
+    return tuple(out)
+
+
+def resolve(config: Config, service: str) -> ServiceSettings:
+    d = config.defaults
+    rule_index = None
+    rule: Rule | None = None
+    for i, r in enumerate(config.rules):
+        if fnmatch.fnmatchcase(service, r.match):
+            rule_index, rule = i, r
+            break
+
+    def pick(name: str) -> Any:
+        value = getattr(rule, name) if rule is not None else None
+        return getattr(d, name) if value is None else value
+
+    params: dict[str, Any] = {k: v for k, v in d.params.model_dump().items() if v is not None}
+    if rule is not None and rule.params is not None:
+        params.update({k: v for k, v in rule.params.model_dump().items() if v is not None})
+    model = ModelSettings(
+        kind=pick("model"), threshold=pick("threshold"), warm_up=pick("warm_up"), seed=pick("seed"), **params
+    )
+    return ServiceSettings(
+        window=pick("window"),
+        lateness=pick("lateness"),
+        features=_compile_features(pick("features")),
+        model=model,
+        rule_index=rule_index,
+        rule_match=rule.match if rule is not None else None,
+    )
+
+
+def _format_problem(source: str, err: dict[str, Any]) -> str:
+    loc = ".".join(str(p) for p in err.get("loc", ())) or "(top level)"
+    value = err.get("input")
+    kind = err.get("type", "")
+    msg = err.get("msg", "")
+    if kind == "extra_forbidden":
+        return f"{source}: {loc}: unknown key (value {value!r}); remove it or check its spelling"
+    return f"{source}: {loc}: {msg} (got {value!r})"
+
+
+def parse_config(text: str, source: str = "<config>") -> Config:
+    """Parse and validate config text; raise :class:`ConfigError` listing every problem."""
+    try:
+        data = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise ConfigError(f"{source}: not valid TOML: {exc}") from exc
+    try:
+        config = Config.model_validate(data)
+    except ValidationError as exc:
+        problems = [_format_problem(source, e) for e in exc.errors(include_url=False)]
+        raise ConfigError(f"{source}: {len(problems)} problem(s) in the config", problems) from exc
+    # Model settings are validated once more by models/ itself (ranges that depend on each other).
+    try:
+        resolve(config, "")
+        for r in config.rules:
+            resolve(config, r.match)
+    except ValueError as exc:
+        raise ConfigError(f"{source}: {exc}") from exc
+    return config
+
+
+def load_config(path: str | os.PathLike[str] | None) -> Config:
+    """Load a config file; ``None`` gives the built-in defaults."""
+    if path is None:
+        return Config()
+    p = Path(path)
+    try:
+        text = p.read_text(encoding="utf-8")
+    except (OSError, UnicodeDecodeError) as exc:
+        raise ConfigError(f"{p}: cannot read the config file: {exc}") from exc
+    return parse_config(text, str(p))

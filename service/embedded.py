@@ -1,0 +1,303 @@
+"""The embedded bus: JSON lines from a file or stdin in, JSON lines out.
+
+``run`` is the long-running form: it restores learned state and its input and
+output positions from the state directory, checkpoints at an interval and on a
+stop request, and resumes where it stopped when started again on the same input.
+``replay`` scores a recorded file from fresh models as fast as it can and flushes
+every open window at the end.
+
+A restarted ``run`` produces exactly the output of an uninterrupted one when the
+output is a file: on restart the output (and rejects) file is cut back to its
+size at the last checkpoint, and input resumes from the byte offset saved with it.
+"""
+
+from __future__ import annotations
+
+import logging
+import os
+import sys
+import threading
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, BinaryIO
+
+from service.checkpoint import CheckpointStore
+from service.config import Config
+from service.engine import Engine
+from service.errors import OutputError, StateStoreError
+from service.httpserver import MetricsServer
+from service.metrics import build_registry
+from service.sinks import LineSink, encode_reject
+from service.stats import RuntimeStats
+from service.windows import SourceWindows, Window
+
+__all__ = ["RunSummary", "run_embedded", "replay", "SOURCE_ID"]
+
+log = logging.getLogger("tidewatch.embedded")
+
+SOURCE_ID = "embedded"
+_READ_HINT = 1 << 20  # bytes per batch: large enough to amortise the loop, small enough to stay responsive
+RUNTIME_FORMAT = 1
+
+
+@dataclass
+class RunSummary:
+    """What a run or replay did."""
+
+    lines: int = 0
+    accepted: int = 0
+    rejected: dict[str, int] = field(default_factory=dict)
+    windows: int = 0
+    flagged: int = 0
+    services: int = 0
+    seconds: float = 0.0
+    resumed_at_line: int = 0
+    refused_state: list[str] = field(default_factory=list)
+
+    def describe(self) -> str:
+        rej = sum(self.rejected.values())
+        reasons = ", ".join(f"{k} {v}" for k, v in sorted(self.rejected.items())) or "none"
+        rate = self.lines / self.seconds if self.seconds > 0 else 0.0
+        return (
+            f"read {self.lines} lines ({rate:,.0f}/s): {self.accepted} accepted, {rej} rejected ({reasons}); "
+            f"{self.windows} windows scored for {self.services} services, {self.flagged} flagged"
+        )
+
+
+def _open_input(path: str) -> BinaryIO:
+    if path == "-":
+        return sys.stdin.buffer
+    return open(path, "rb")
+
+
+class _Loop:
+    """Read batches of lines into the engine; shared by run and replay."""
+
+    def __init__(self, engine: Engine, src: SourceWindows, f: BinaryIO, *, line: int, follow: bool, stop: threading.Event):
+        self.engine = engine
+        self.src = src
+        self.f = f
+        self.line = line
+        self.follow = follow
+        self.stop = stop
+        self.pending = b""
+
+    def offset(self) -> int:
+        """Byte offset just past the last line handed to the engine."""
+        return self.f.tell() - len(self.pending)
+
+    def batches(self):
+        f = self.f
+        while not self.stop.is_set():
+            lines = f.readlines(_READ_HINT)
+            if not lines:
+                if self.follow:
+                    self.engine.stats.heartbeat = time.monotonic()
+                    self.stop.wait(0.2)
+                    continue
+                return
+            if self.pending:
+                lines[0] = self.pending + lines[0]
+                self.pending = b""
+            if self.follow and not lines[-1].endswith(b"\n"):
+                # A writer is mid-line: keep the fragment until the rest arrives.
+                self.pending = lines.pop()
+                if not lines:
+                    continue
+            yield lines
+
+    def pump(self, on_batch=None) -> None:
+        engine = self.engine
+        src = self.src
+        for lines in self.batches():
+            base = self.line
+            engine.feed(src, lines, lambda i, base=base: {"line": base + i + 1})
+            self.line = base + len(lines)
+            engine.stats.heartbeat = time.monotonic()
+            if on_batch is not None:
+                on_batch()
+
+
+def _make_engine(config: Config, scores: LineSink, rejects: LineSink | None, stats: RuntimeStats, source_name: str) -> Engine:
+    def on_score(service: str, payload: bytes, window: Window) -> None:
+        scores.write(payload)
+
+    def on_reject(code: str, detail: str, raw: bytes, origin: Any) -> None:
+        if rejects is not None:
+            if isinstance(origin, dict):
+                origin = {"source": source_name, **origin}
+            rejects.write(encode_reject(code, detail, raw, origin))
+
+    return Engine(config, on_score=on_score, on_reject=on_reject, stats=stats)
+
+
+def _summary(engine: Engine, lines: int, started: float) -> RunSummary:
+    st = engine.stats
+    return RunSummary(
+        lines=lines,
+        accepted=st.accepted,
+        rejected=dict(st.rejected),
+        windows=st.windows_closed,
+        flagged=st.windows_flagged,
+        services=len(engine.registry.models),
+        seconds=time.perf_counter() - started,
+    )
+
+
+def replay(config: Config, input_path: str, output: str, rejects: str | None = None) -> RunSummary:
+    """Score a recorded file from fresh models; flush every window at the end.
+
+    >>> import tempfile, os
+    >>> d = tempfile.mkdtemp()
+    >>> p = os.path.join(d, "in.jsonl")
+    >>> with open(p, "w") as f:
+    ...     for i in range(120):
+    ...         _ = f.write('{"service": "api", "ts": %d, "metrics": {"x": %d}}\\n' % (1772409600 + 30 * i, i % 7))
+    >>> s = replay(Config(), p, os.path.join(d, "out.jsonl"))
+    >>> s.lines, s.accepted, s.windows
+    (120, 120, 60)
+    """
+    started = time.perf_counter()
+    stats = RuntimeStats()
+    scores = LineSink(output, truncate_to=0) if output != "-" else LineSink(output)
+    rej = LineSink(rejects, truncate_to=0) if rejects not in (None, "-") else (LineSink("-") if rejects == "-" else None)
+    engine = _make_engine(config, scores, rej, stats, input_path)
+    src = engine.source(SOURCE_ID)
+    try:
+        with _open_input(input_path) as f:
+            loop = _Loop(engine, src, f, line=0, follow=False, stop=threading.Event())
+            loop.pump()
+        engine.flush(src)
+    finally:
+        scores.close()
+        if rej is not None:
+            rej.close()
+    return _summary(engine, loop.line, started)
+
+
+@dataclass
+class RunOptions:
+    """Options of ``tidewatch run`` in embedded mode."""
+
+    input: str = "-"
+    output: str = "-"
+    rejects: str | None = None
+    state_dir: str | None = None
+    follow: bool = False
+    http_listen: str | None = None  # None: take the config's
+    state_key: bytes | None = None
+
+
+def run_embedded(config: Config, opts: RunOptions, stop: threading.Event) -> RunSummary:
+    """Run until the input ends (or, with ``follow``, until ``stop`` is set)."""
+    started = time.perf_counter()
+    stats = RuntimeStats()
+    state_dir = opts.state_dir or config.state.dir
+    store = CheckpointStore(state_dir, stats=stats, key=opts.state_key)
+    restored = store.load()
+    for line in restored.refused:
+        log.error("saved state refused; the service starts fresh", extra={"event": "state_refused", "detail": line})
+
+    in_path = None if opts.input == "-" else str(Path(opts.input).resolve())
+    out_path = None if opts.output == "-" else str(Path(opts.output).resolve())
+    rej_path = None if opts.rejects in (None, "-") else str(Path(opts.rejects).resolve())
+    rt = restored.runtime or {}
+    resume = bool(in_path) and rt.get("input", {}).get("path") == in_path
+    if resume:
+        try:
+            size = os.path.getsize(in_path)  # type: ignore[arg-type]
+        except OSError:
+            size = -1
+        if size < rt["input"]["offset"]:
+            log.warning(
+                "input is shorter than the saved position; reading it from the start",
+                extra={"event": "resume_refused", "path": in_path},
+            )
+            resume = False
+
+    def position(section: str, path: str | None) -> int | None:
+        if resume and path is not None and rt.get(section, {}).get("path") == path:
+            return int(rt[section]["offset"])
+        return None
+
+    scores = LineSink(opts.output, truncate_to=position("output", out_path))
+    rej: LineSink | None = None
+    if opts.rejects == "-":
+        rej = LineSink("-")
+    elif opts.rejects:
+        rej = LineSink(opts.rejects, truncate_to=position("rejects", rej_path))
+    engine = _make_engine(config, scores, rej, stats, opts.input)
+    for service, model in restored.models.items():
+        engine.registry.put(service, model)
+    if resume and SOURCE_ID in rt.get("sources", {}):
+        engine.sources[SOURCE_ID] = SourceWindows.from_state(rt["sources"][SOURCE_ID])
+    src = engine.source(SOURCE_ID)
+
+    listen = config.http.listen if opts.http_listen is None else opts.http_listen
+    server = None
+    if listen:
+        registry = build_registry(stats, lambda: len(engine.registry.models), config.limits.max_service_series)
+        server = MetricsServer(listen, registry, stats).start()
+        log.info("serving metrics", extra={"event": "http_listening", "address": "%s:%d" % server.address})
+
+    f = _open_input(opts.input)
+    start_line = 0
+    if resume:
+        f.seek(int(rt["input"]["offset"]))
+        start_line = int(rt["input"].get("line", 0))
+        log.info("resuming", extra={"event": "resumed", "line": start_line, "generation": restored.generation})
+    loop = _Loop(engine, src, f, line=start_line, follow=opts.follow, stop=stop)
+    stats.ready = True
+
+    def checkpoint() -> None:
+        out_off = scores.sync()
+        rej_off = rej.sync() if rej is not None else None
+        stats.high_marks[SOURCE_ID] = src.high_mark
+        runtime = {
+            "format": RUNTIME_FORMAT,
+            "input": {"path": in_path, "offset": loop.offset() if in_path else 0, "line": loop.line},
+            "output": {"path": out_path, "offset": out_off},
+            "rejects": {"path": rej_path, "offset": rej_off},
+            "sources": {SOURCE_ID: src.to_state()} if in_path else {},
+            "saved_at": time.time(),
+        }
+        try:
+            store.save(engine.registry.models, engine.registry.dirty, runtime)
+            engine.registry.dirty.clear()
+        except StateStoreError as exc:
+            # Scoring goes on; the next interval tries again with everything still dirty.
+            log.error("checkpoint failed; will retry", extra={"event": "state_save_failed", "error": str(exc)})
+
+    interval = config.state.checkpoint_interval
+    next_at = time.monotonic() + interval
+
+    def on_batch() -> None:
+        nonlocal next_at
+        if src.high_mark > float("-inf"):
+            stats.high_marks[SOURCE_ID] = src.high_mark
+        if time.monotonic() >= next_at:
+            checkpoint()
+            next_at = time.monotonic() + interval
+
+    try:
+        loop.pump(on_batch)
+        if not stop.is_set():
+            # The input ended: every open window is final.
+            engine.flush(src)
+        checkpoint()
+    except OutputError:
+        # Nothing past the last checkpoint is acknowledged: the next start resumes there.
+        raise
+    finally:
+        if server is not None:
+            server.stop()
+        if f is not sys.stdin.buffer:
+            f.close()
+        scores.close()
+        if rej is not None:
+            rej.close()
+    summary = _summary(engine, loop.line - start_line, started)
+    summary.resumed_at_line = start_line
+    summary.refused_state = restored.refused
+    return summary

@@ -1,0 +1,49 @@
+"""Per-service models, created on first sight from the rule that matches the service."""
+
+from __future__ import annotations
+
+from models import ServiceModel, build_model
+from service.config import Config, ServiceSettings, resolve
+from service.stats import RuntimeStats
+
+__all__ = ["ModelRegistry"]
+
+
+class ModelRegistry:
+    """The live models of one process and the settings each service resolved to.
+
+    ``dirty`` holds the services whose model changed since the last checkpoint, so a
+    checkpoint writes only those.
+    """
+
+    def __init__(self, config: Config, stats: RuntimeStats) -> None:
+        self.config = config
+        self.stats = stats
+        self._settings: dict[str, ServiceSettings] = {}
+        self.models: dict[str, ServiceModel] = {}
+        self.dirty: set[str] = set()
+
+    def settings(self, service: str) -> ServiceSettings:
+        s = self._settings.get(service)
+        if s is None:
+            s = self._settings[service] = resolve(self.config, service)
+        return s
+
+    def model(self, service: str) -> ServiceModel:
+        m = self.models.get(service)
+        if m is None:
+            m = self.models[service] = build_model(service, self.settings(service).model)
+            self.stats.models_created += 1
+        return m
+
+    def put(self, service: str, model: ServiceModel) -> None:
+        """Install a restored model (its settings are kept as saved)."""
+        self.models[service] = model
+        self.stats.models_restored += 1
+
+    def drop(self, service: str) -> None:
+        self.models.pop(service, None)
+        self.dirty.discard(service)
+
+    def __len__(self) -> int:
+        return len(self.models)

@@ -1,0 +1,239 @@
+"""Event-time tumbling windows per service, closed by a per-source watermark.
+
+A window of length ``L`` covers ``[k*L, (k+1)*L)`` seconds since the Unix epoch:
+the start is included, the end excluded. Each source (a file, stdin, or one input
+partition) keeps its own *high mark*, the largest event time seen on it; a window
+of a service with allowed lateness ``D`` closes once ``high mark - D >= end``
+(that difference is the service's watermark, and it never moves back). An event
+whose window has already closed is late: it is refused and the caller routes it.
+
+Timeline for L = 60 s, D = 10 s::
+
+    events   t=05  t=50   t=65        t=71          t=58
+    window   [0,60) [0,60) [60,120)    [60,120)      [0,60) -> late
+    closes                             [0,60) (71-10 >= 60)
+
+>>> sw = SourceWindows()
+>>> sw.add("api", 5.0, {"x": 1.0}, 60.0, 10.0), sw.add("api", 50.0, {"x": 3.0}, 60.0, 10.0)
+(True, True)
+>>> sw.add("api", 71.0, {"x": 5.0}, 60.0, 10.0)
+True
+>>> [(s, w.start, w.count, w.aggs["x"]) for s, w in sw.pop_closed()]
+[('api', 0.0, 2, [2, 4.0, 1.0, 3.0, 3.0])]
+>>> sw.add("api", 58.0, {"x": 1.0}, 60.0, 10.0)
+False
+"""
+
+from __future__ import annotations
+
+import heapq
+import math
+from collections.abc import Iterable
+from dataclasses import dataclass
+from fnmatch import fnmatchcase
+
+__all__ = ["FeatureSpec", "Window", "SourceWindows", "window_features", "feature_names"]
+
+
+@dataclass(frozen=True, slots=True)
+class FeatureSpec:
+    """A compiled feature: ``metric_glob`` (None for the message count) and aggregate."""
+
+    metric_glob: str | None
+    aggregate: str
+
+    @property
+    def is_exact(self) -> bool:
+        return self.metric_glob is not None and not any(c in self.metric_glob for c in "*?[")
+
+# Per-metric aggregate slots: [count, sum, min, max, last]
+_COUNT, _SUM, _MIN, _MAX, _LAST = range(5)
+
+
+class Window:
+    """The partial aggregates of one (service, window)."""
+
+    __slots__ = ("start", "end", "count", "aggs")
+
+    def __init__(self, start: float, end: float) -> None:
+        self.start = start
+        self.end = end
+        self.count = 0
+        self.aggs: dict[str, list] = {}
+
+    def to_state(self) -> list:
+        return [self.start, self.end, self.count, self.aggs]
+
+    @classmethod
+    def from_state(cls, state: list) -> "Window":
+        w = cls(float(state[0]), float(state[1]))
+        w.count = int(state[2])
+        w.aggs = {str(k): [int(v[0]), float(v[1]), float(v[2]), float(v[3]), float(v[4])] for k, v in state[3].items()}
+        return w
+
+
+class SourceWindows:
+    """Open windows and the high mark of one source.
+
+    ``add`` returns False for a late event (nothing is changed then). Closed
+    windows are handed out by ``pop_closed`` in (close time, service, start)
+    order, so the output order depends only on this source's input order.
+    """
+
+    __slots__ = ("high_mark", "open", "_heap")
+
+    def __init__(self) -> None:
+        self.high_mark = -math.inf
+        self.open: dict[str, dict[float, Window]] = {}
+        # (close_at, service, start): ordering ties by name keeps restored runs identical.
+        self._heap: list[tuple[float, str, float]] = []
+
+    def add(self, service: str, ts: float, metrics: dict, length: float, lateness: float) -> bool:
+        start = ts - (ts % length)
+        close_at = start + length + lateness
+        if close_at <= self.high_mark:
+            return False
+        per_service = self.open.get(service)
+        if per_service is None:
+            per_service = self.open[service] = {}
+        window = per_service.get(start)
+        if window is None:
+            window = per_service[start] = Window(start, start + length)
+            heapq.heappush(self._heap, (close_at, service, start))
+        window.count += 1
+        aggs = window.aggs
+        for name, value in metrics.items():
+            agg = aggs.get(name)
+            if agg is None:
+                aggs[name] = [1, value, value, value, value]
+            else:
+                agg[0] += 1
+                agg[1] += value
+                if value < agg[2]:
+                    agg[2] = value
+                if value > agg[3]:
+                    agg[3] = value
+                agg[4] = value
+        if ts > self.high_mark:
+            self.high_mark = ts
+        return True
+
+    def has_due(self) -> bool:
+        return bool(self._heap) and self._heap[0][0] <= self.high_mark
+
+    def pop_closed(self, *, flush: bool = False) -> list[tuple[str, Window]]:
+        """Remove and return the windows the watermark has passed (all of them with ``flush``)."""
+        heap = self._heap
+        out: list[tuple[str, Window]] = []
+        mark = math.inf if flush else self.high_mark
+        while heap and heap[0][0] <= mark:
+            close_at, service, start = heapq.heappop(heap)
+            if close_at > self.high_mark:
+                # Flushing a finite input: the watermark moves past what was closed, so a
+                # later event for a flushed window counts as late instead of reopening it.
+                self.high_mark = close_at
+            per_service = self.open[service]
+            out.append((service, per_service.pop(start)))
+            if not per_service:
+                del self.open[service]
+        return out
+
+    def services(self) -> Iterable[str]:
+        return self.open.keys()
+
+    # --- snapshots -----------------------------------------------------------------
+    def service_state(self, service: str) -> list:
+        """The open windows of one service, as plain data (for its changelog record)."""
+        return [w.to_state() for w in self.open.get(service, {}).values()]
+
+    def drop_service(self, service: str) -> None:
+        if self.open.pop(service, None) is not None:
+            self._heap = [e for e in self._heap if e[1] != service]
+            heapq.heapify(self._heap)
+
+    def restore_service(self, service: str, state: list, lateness: float) -> None:
+        """Put back one service's open windows (from :meth:`service_state`)."""
+        self.drop_service(service)
+        if not state:
+            return
+        per_service = self.open[service] = {}
+        for item in state:
+            w = Window.from_state(item)
+            per_service[w.start] = w
+            heapq.heappush(self._heap, (w.end + lateness, service, w.start))
+
+    def to_state(self) -> dict:
+        return {
+            "high_mark": self.high_mark if math.isfinite(self.high_mark) else None,
+            "open": {s: self.service_state(s) for s in self.open},
+            "heap": [list(e) for e in self._heap],
+        }
+
+    @classmethod
+    def from_state(cls, state: dict) -> "SourceWindows":
+        sw = cls()
+        hm = state.get("high_mark")
+        sw.high_mark = -math.inf if hm is None else float(hm)
+        for service, items in state.get("open", {}).items():
+            per_service = sw.open[service] = {}
+            for item in items:
+                w = Window.from_state(item)
+                per_service[w.start] = w
+        sw._heap = [(float(c), str(s), float(st)) for c, s, st in state.get("heap", [])]
+        heapq.heapify(sw._heap)
+        return sw
+
+
+_NAME_CACHE: dict[tuple[str, str], str] = {}
+
+
+def feature_names(metric: str, aggregate: str) -> str:
+    """The feature name of one metric aggregate, e.g. ``latency_p95_ms.mean``."""
+    key = (metric, aggregate)
+    name = _NAME_CACHE.get(key)
+    if name is None:
+        name = f"{metric}.{aggregate}"
+        if len(_NAME_CACHE) < 1_000_000:
+            _NAME_CACHE[key] = name
+    return name
+
+
+def _value(agg: list, aggregate: str) -> float:
+    if aggregate == "mean":
+        return agg[_SUM] / agg[_COUNT]
+    if aggregate == "sum":
+        return float(agg[_SUM])
+    if aggregate == "min":
+        return float(agg[_MIN])
+    if aggregate == "max":
+        return float(agg[_MAX])
+    if aggregate == "last":
+        return float(agg[_LAST])
+    return float(agg[_COUNT])  # "count": how many messages carried this metric
+
+
+def window_features(window: Window, specs: tuple) -> dict[str, float]:
+    """The feature mapping of a closed window under a rule's feature specs.
+
+    >>> w = Window(0.0, 60.0); w.count = 2; w.aggs = {"x": [2, 4.0, 1.0, 3.0, 3.0]}
+    >>> window_features(w, (FeatureSpec("*", "mean"), FeatureSpec("x", "max"), FeatureSpec(None, "count")))
+    {'x.mean': 2.0, 'x.max': 3.0, 'count': 2.0}
+    """
+    out: dict[str, float] = {}
+    aggs = window.aggs
+    for spec in specs:
+        glob = spec.metric_glob
+        if glob is None:
+            out["count"] = float(window.count)
+        elif glob == "*":
+            for metric, agg in aggs.items():
+                out[feature_names(metric, spec.aggregate)] = _value(agg, spec.aggregate)
+        elif spec.is_exact:
+            agg = aggs.get(glob)
+            if agg is not None:
+                out[feature_names(glob, spec.aggregate)] = _value(agg, spec.aggregate)
+        else:
+            for metric, agg in aggs.items():
+                if fnmatchcase(metric, glob):
+                    out[feature_names(metric, spec.aggregate)] = _value(agg, spec.aggregate)
+    return out

@@ -1,0 +1,93 @@
+"""Config validation, rule resolution, and check-config."""
+
+from __future__ import annotations
+
+import pytest
+
+from service.cli import main
+from service.config import load_config, parse_config
+from service.errors import ConfigError
+
+
+def test_defaults_apply_when_no_rule_matches():
+    cfg = parse_config("")
+    s = cfg.settings_for("anything")
+    assert (s.window, s.lateness, s.model.kind, s.model.threshold, s.model.warm_up) == (60.0, 10.0, "combined", 0.99, 36)
+    assert s.rule_index is None
+
+
+def test_first_matching_rule_wins_and_overrides_only_what_it_sets():
+    cfg = parse_config(
+        """
+[defaults]
+window = "2m"
+[defaults.params]
+trees = 12
+[[rules]]
+match = "ticket-*"
+threshold = 0.995
+[rules.params]
+height = 6
+[[rules]]
+match = "ticket-api"
+window = "10s"
+"""
+    )
+    s = cfg.settings_for("ticket-api")
+    assert s.rule_index == 0 and s.window == 120.0 and s.model.threshold == 0.995
+    assert (s.model.trees, s.model.height) == (12, 6)
+    assert cfg.settings_for("ticket-api-2").rule_index == 0
+    assert cfg.settings_for("berth").rule_index is None
+
+
+@pytest.mark.parametrize("text,seconds", [("250ms", 0.25), ("30s", 30.0), ("5m", 300.0), ("1h", 3600.0), ("2d", 172800.0), ("45", 45.0)])
+def test_durations(text, seconds):
+    value = f'"{text}"' if not text.isdigit() else text
+    assert parse_config(f"[defaults]\nwindow = {value}").defaults.window == seconds
+
+
+def test_unknown_keys_are_rejected_with_their_path():
+    with pytest.raises(ConfigError) as info:
+        parse_config('[[rules]]\nmatch = "a"\nwindoww = "1m"\n', "x.toml")
+    assert info.value.problems == ["x.toml: rules.0.windoww: unknown key (value '1m'); remove it or check its spelling"]
+
+
+def test_bad_values_name_the_file_field_value_and_what_is_allowed():
+    with pytest.raises(ConfigError) as info:
+        parse_config('[defaults]\nwindow = "5 minutes"\nthreshold = 1.5\nmodel = "forest"\n', "f.toml")
+    problems = info.value.problems
+    assert len(problems) == 3
+    assert problems[0].startswith("f.toml: defaults.window: Value error, '5 minutes' is not a duration")
+    assert problems[1] == "f.toml: defaults.model: Input should be 'half_space_trees', 'adaptive_baseline' or 'combined' (got 'forest')" or "defaults.model" in problems[1]
+    assert any(p.startswith("f.toml: defaults.threshold: Input should be less than or equal to 1") for p in problems)
+
+
+def test_feature_syntax_is_checked():
+    with pytest.raises(ConfigError) as info:
+        parse_config('[defaults]\nfeatures = ["lat:median"]\n')
+    assert "aggregate 'median' is not one of" in str(info.value)
+
+
+def test_not_toml_is_a_config_error():
+    with pytest.raises(ConfigError, match="not valid TOML"):
+        parse_config("[defaults\n")
+
+
+def test_the_shipped_example_is_valid(repo_root):
+    cfg = load_config(repo_root / "config" / "tidewatch.example.toml")
+    assert cfg.settings_for("ticket-api").window == 300.0
+
+
+def test_check_config_prints_the_rule_each_service_gets(repo_root, capsys):
+    code = main(["check-config", str(repo_root / "config" / "tidewatch.example.toml"), "ticket-api", "nightly"])
+    out = capsys.readouterr().out.splitlines()
+    assert code == 0
+    assert out[1].startswith("ticket-api: rule #1 (match 'ticket-*'): window 5m")
+    assert out[2].startswith("nightly: defaults: window 1m")
+
+
+def test_check_config_exits_2_on_a_bad_file(tmp_path, capsys):
+    p = tmp_path / "bad.toml"
+    p.write_text('[defaults]\nwarm_up = -1\n')
+    assert main(["check-config", str(p)]) == 2
+    assert "defaults.warm_up" in capsys.readouterr().err
