@@ -10,7 +10,7 @@ Examples
 >>> isinstance(AdaptiveBaseline(), Scorer)
 True
 >>> names, values = split_features({"b": 2, "a": float("nan"), "c": 0.5})
->>> names, values.tolist()
+>>> names, values
 (['b', 'c'], [2.0, 0.5])
 """
 
@@ -19,8 +19,6 @@ from __future__ import annotations
 import math
 from collections.abc import Mapping
 from typing import Protocol, runtime_checkable
-
-import numpy as np
 
 from models.errors import FeatureError
 
@@ -40,8 +38,8 @@ class Scorer(Protocol):
         ...
 
 
-def split_features(x: Mapping[str, float]) -> tuple[list[str], np.ndarray]:
-    """Names and float64 values of the usable features of ``x``, in input order.
+def split_features(x: Mapping[str, float]) -> tuple[list[str], list[float]]:
+    """Names and float values of the usable features of ``x``, in input order.
 
     Non-finite values (NaN, ±inf) are dropped, i.e. treated as missing: an aggregation over an
     empty window or a broken exporter must not poison a baseline for good. A key that is not a
@@ -64,4 +62,4 @@ def split_features(x: Mapping[str, float]) -> tuple[list[str], np.ndarray]:
         if math.isfinite(v):
             names.append(name)
             values.append(v)
-    return names, np.array(values, dtype=np.float64)
+    return names, values

@@ -3,23 +3,30 @@
 The baseline follows slow drift (a service whose latency creeps up over a week is not an incident)
 while a sudden departure from the recent level stands out as a large standardised deviation.
 
-Update rule (per feature, smoothing factor ``alpha``), the incremental form of an exponentially
-weighted mean and *biased* variance::
+Per feature, with smoothing factor ``alpha`` and ``keep = 1 - alpha``, every update decays the
+weights of all earlier values by ``keep`` and gives the new value the weight ``new``; the
+statistics are the weighted mean and the *biased* weighted variance, updated incrementally
+(West's weighted form of Welford's algorithm)::
 
-    diff = x - mean
-    mean = mean + alpha * diff
-    var  = (1 - alpha) * (var + alpha * diff ** 2)
+    W     = keep * W + new                  # sum of weights
+    W2    = keep**2 * W2 + new**2           # sum of squared weights
+    diff  = x - mean
+    mean  = mean + new * diff / W
+    var   = (keep * var * W_before + new * diff * (x - mean)) / W
 
-started from ``mean = x0, var = 0`` at a feature's first value. ``mean`` equals
-``pandas.Series.ewm(alpha=alpha, adjust=False).mean()`` and ``var`` equals
-``.var(bias=True)`` with the same arguments. For z-scores the variance is de-biased with the sum
-of squared weights ``w2`` (``w2 = (1 - alpha) ** 2 * w2 + alpha ** 2``, starting at 1)::
+starting from ``mean = x0, var = 0, W = W2 = 1`` at a feature's first value.
 
-    unbiased_var = var / (1 - w2)
+* ``adjust=True`` (default, ``new = 1``): the weights are ``keep ** age`` normalised by their sum,
+  so ``mean`` equals ``pandas.Series.ewm(alpha=alpha, adjust=True).mean()`` and starts out as a
+  plain average of the first values.
+* ``adjust=False`` (``new = alpha``, so ``W`` stays 1): the classic recursion
+  ``mean = mean + alpha * (x - mean)``, equal to ``.ewm(alpha=alpha, adjust=False).mean()``. Its
+  first value keeps the weight ``keep ** n`` -- still one half after one half-life -- so a
+  young baseline is mostly its first window, and early z-scores are far too large.
 
-which equals ``.var(bias=False)`` and, for two values, the ordinary sample variance. Without it the
-first dozens of windows would have far too small a spread and every early window would look
-extreme.
+``var`` equals ``.var(bias=True)`` with the same arguments. z-scores use the de-biased variance
+``var / (1 - W2 / W**2)``, which equals ``.var(bias=False)`` (for two values: the sample
+variance); without it a young baseline would have far too small a spread.
 
 The raw score of a window is the largest absolute z-score among its features, so it reads in
 "standard deviations" and always matches the first contributor of the window.
@@ -48,10 +55,11 @@ import numpy as np
 from models.base import split_features
 from models.errors import CorruptState, SettingsError
 
-__all__ = ["AdaptiveBaseline", "EwmaChart", "ewma_chart", "alpha_from_half_life"]
+__all__ = ["AdaptiveBaseline", "EwmaChart", "alpha_from_half_life", "ewma_chart", "normal_equivalent"]
 
 # |z| is clipped here so one absurd value cannot turn a score or a contribution into inf/NaN.
 Z_LIMIT = 1e6
+_TINY = 1e-300
 
 
 def alpha_from_half_life(half_life: float) -> float:
@@ -67,6 +75,26 @@ def alpha_from_half_life(half_life: float) -> float:
     return 1.0 - 0.5 ** (1.0 / float(half_life))
 
 
+def normal_equivalent(t: float, dof: float) -> float:
+    """Normal deviate with (about) the same tail probability as ``t`` under Student's t.
+
+    Uses the closed form ``sign(t) * (8 dof + 1) / (8 dof + 3) * sqrt(dof * log1p(t**2 / dof))``
+    (a classical normal approximation to Student's t, after D. L. Wallace, 1959). It is monotone
+    in ``|t|``, tends to ``t`` as ``dof`` grows and is 0 for ``dof <= 0``. A z-score measured against
+    a baseline of a few windows is t-distributed with heavy tails; converting it keeps a young
+    baseline's chance deviations from looking like incidents.
+
+    >>> round(normal_equivalent(3.0, 1e9), 3)
+    3.0
+    >>> round(normal_equivalent(10.0, 2.0), 2)
+    2.51
+    """
+    if dof <= 0.0:
+        return 0.0
+    z = (8.0 * dof + 1.0) / (8.0 * dof + 3.0) * math.sqrt(dof * math.log1p(t * t / dof))
+    return z if t >= 0.0 else -z
+
+
 class AdaptiveBaseline:
     """Exponentially weighted mean and variance per feature, scored by the largest ``|z|``.
 
@@ -74,6 +102,9 @@ class AdaptiveBaseline:
     ----------
     half_life
         Half-life of the weights, in updates (windows).
+    adjust
+        Normalised weights (``True``, pandas ``adjust=True``) or the classic recursion
+        (``False``); see the module docstring.
     absolute_floor, relative_floor
         The standard deviation used in z-scores is at least
         ``absolute_floor + relative_floor * |mean|``. A metric that has been perfectly flat has zero
@@ -84,11 +115,13 @@ class AdaptiveBaseline:
     -----
     A feature's z-score is 0 until it has been seen twice (no spread is known yet). Features are
     added when first seen; features absent from a window are left untouched. Feature order in the
-    input never matters.
+    input never matters. The statistics live in plain Python lists: a window has a handful of
+    features, where per-call numpy overhead would cost more than the arithmetic (the saved state
+    uses numpy arrays).
 
     Examples
     --------
-    >>> baseline = AdaptiveBaseline(half_life=2.0)
+    >>> baseline = AdaptiveBaseline(half_life=2.0, adjust=False)
     >>> for x in [1.0, 2.0, 3.0]:
     ...     baseline.learn_one({"a": x})
     >>> mean, z = baseline.deviation("a", 3.0)
@@ -96,13 +129,16 @@ class AdaptiveBaseline:
     (1.7929, 1.0987)
     """
 
-    __slots__ = ("half_life", "alpha", "absolute_floor", "relative_floor",
-                 "_names", "_index", "_mean", "_var", "_w2", "_count")
+    __slots__ = ("half_life", "alpha", "adjust", "absolute_floor", "relative_floor",
+                 "_names", "_index", "_mean", "_var", "_w", "_w2", "_count")
 
-    def __init__(self, half_life: float = 24.0, *, absolute_floor: float = 1e-9,
-                 relative_floor: float = 1e-3) -> None:
+    def __init__(self, half_life: float = 24.0, *, adjust: bool = True,
+                 absolute_floor: float = 1e-9, relative_floor: float = 1e-3) -> None:
         self.alpha = alpha_from_half_life(half_life)
         self.half_life = float(half_life)
+        if not isinstance(adjust, bool):
+            raise SettingsError(f"adjust must be a bool, got {adjust!r}")
+        self.adjust = adjust
         if not (math.isfinite(absolute_floor) and absolute_floor > 0):
             raise SettingsError(f"absolute_floor must be > 0, got {absolute_floor!r}")
         if not (math.isfinite(relative_floor) and relative_floor >= 0):
@@ -111,79 +147,116 @@ class AdaptiveBaseline:
         self.relative_floor = float(relative_floor)
         self._names: list[str] = []
         self._index: dict[str, int] = {}
-        self._mean = np.zeros(0, dtype=np.float64)
-        self._var = np.zeros(0, dtype=np.float64)
-        self._w2 = np.zeros(0, dtype=np.float64)
-        self._count = np.zeros(0, dtype=np.int64)
+        self._mean: list[float] = []
+        self._var: list[float] = []  # biased (pandas ``bias=True``)
+        self._w: list[float] = []    # sum of weights
+        self._w2: list[float] = []   # sum of squared weights, for de-biasing
+        self._count: list[int] = []
 
-    # ------------------------------------------------------------------ array-level API
     @property
     def features(self) -> tuple[str, ...]:
         """Feature names known so far, in the order they were first seen."""
         return tuple(self._names)
 
-    def locate(self, names: Iterable[str], *, add: bool = False) -> np.ndarray:
-        """Indices of ``names`` in the internal arrays; -1 for unknown ones unless ``add``.
+    def locate(self, names: Iterable[str], *, add: bool = False) -> list[int]:
+        """Positions of ``names`` in the statistics; -1 for unknown ones unless ``add``.
 
-        New features added here have no observation yet, so their z-score is 0 until learned.
+        A feature added here has no observation yet: it is not scorable until learned twice.
         """
         index = self._index
-        new = [n for n in names if n not in index] if add else []
-        if new:
-            for n in dict.fromkeys(new):  # dedupe, keep order
-                index[n] = len(self._names)
-                self._names.append(n)
-            grow = len(self._names) - self._mean.size
-            self._mean = np.concatenate([self._mean, np.zeros(grow)])
-            self._var = np.concatenate([self._var, np.zeros(grow)])
-            self._w2 = np.concatenate([self._w2, np.ones(grow)])
-            self._count = np.concatenate([self._count, np.zeros(grow, dtype=np.int64)])
-        return np.fromiter((index.get(n, -1) for n in names), dtype=np.intp)
-
-    def expected(self, idx: np.ndarray) -> np.ndarray:
-        """Current means at ``idx`` (NaN for unknown features or features never learned)."""
-        known = idx >= 0
-        out = np.full(idx.shape, np.nan)
-        seen = known.copy()
-        seen[known] = self._count[idx[known]] > 0
-        out[seen] = self._mean[idx[seen]]
+        out = []
+        for name in names:
+            i = index.get(name, -1)
+            if i < 0 and add:
+                i = index[name] = len(self._names)
+                self._names.append(name)
+                self._mean.append(0.0)
+                self._var.append(0.0)
+                self._w.append(1.0)
+                self._w2.append(1.0)
+                self._count.append(0)
+            out.append(i)
         return out
 
-    def scale(self, idx: np.ndarray) -> np.ndarray:
-        """Standard deviation used for z-scores at valid ``idx`` (de-biased, floored)."""
-        denom = 1.0 - self._w2[idx]
-        var = np.divide(self._var[idx], denom, out=np.zeros(idx.shape), where=denom > 0.0)
-        floor = self.absolute_floor + self.relative_floor * np.abs(self._mean[idx])
-        return np.maximum(np.sqrt(var), floor)
+    def statistics(self, feature: str) -> tuple[float, float, float, int]:
+        """``(mean, biased variance, de-biased variance, count)`` of one feature.
 
-    def zscores(self, idx: np.ndarray, values: np.ndarray) -> np.ndarray:
-        """Signed z-scores of ``values`` against the current baseline (0 where not yet defined)."""
-        z = np.zeros(values.shape)
-        ok = idx >= 0
-        ok[ok] = self._count[idx[ok]] >= 2
-        if ok.any():
-            i = idx[ok]
-            z[ok] = np.clip((values[ok] - self._mean[i]) / self.scale(i), -Z_LIMIT, Z_LIMIT)
-        return z
+        The de-biased variance is NaN below two observations.
+        """
+        i = self._index[feature]
+        w, w2 = self._w[i], self._w2[i]
+        denom = 1.0 - w2 / (w * w)
+        unbiased = self._var[i] / denom if self._count[i] >= 2 and denom > 0.0 else math.nan
+        return self._mean[i], self._var[i], unbiased, self._count[i]
 
-    def update(self, idx: np.ndarray, values: np.ndarray) -> None:
-        """Learn ``values`` at valid, distinct ``idx`` (as returned by ``locate(add=True)``)."""
+    def compare(self, idx: Sequence[int], values: Sequence[float]
+                ) -> tuple[list[float], list[float], list[float], list[bool]]:
+        """Compare ``values`` with the baseline at valid positions ``idx``.
+
+        Returns
+        -------
+        expected
+            Baseline means (NaN for a feature never learned).
+        z
+            Signed z-scores ``(x - mean) / sd``, clipped to ``±Z_LIMIT``; 0.0 where not scorable.
+        tail
+            Signed *predictive* deviations on the normal scale: ``x - mean`` over its predictive
+            spread ``sd * sqrt(1 + W2 / W**2)`` (the mean is itself estimated), converted with
+            :func:`normal_equivalent` at ``W**2 / W2 - 1`` effective degrees of freedom. For a
+            mature baseline this is close to ``z``; for a young one it is much smaller.
+        scorable
+            Whether each feature has been learned at least twice (a spread is known).
+        """
+        expected, zs, tails, scorable = [], [], [], []
+        mean_, var_, w_, w2_, count_ = self._mean, self._var, self._w, self._w2, self._count
+        floor_abs, floor_rel = self.absolute_floor, self.relative_floor
+        for i, x in zip(idx, values):
+            n, mean = count_[i], mean_[i]
+            expected.append(mean if n else math.nan)
+            if n < 2:
+                zs.append(0.0)
+                tails.append(0.0)
+                scorable.append(False)
+                continue
+            # De-biased variance; 1 - W2/W**2 is 0 only when alpha rounds to 1 (a baseline that
+            # is just the last value): the variance is then 0 and the floor applies.
+            w = w_[i]
+            share = w2_[i] / (w * w)  # 1 / effective sample size
+            denom = 1.0 - share
+            var = var_[i] / denom if denom > 0.0 else 0.0
+            sd = max(math.sqrt(var), floor_abs + floor_rel * abs(mean))
+            z = (x - mean) / sd
+            z = Z_LIMIT if z > Z_LIMIT else -Z_LIMIT if z < -Z_LIMIT else z
+            zs.append(z)
+            tails.append(normal_equivalent(z / math.sqrt(1.0 + share), 1.0 / share - 1.0))
+            scorable.append(True)
+        return expected, zs, tails, scorable
+
+    def update(self, idx: Sequence[int], values: Sequence[float]) -> None:
+        """Learn ``values`` at valid, distinct positions ``idx`` (from ``locate(add=True)``)."""
         a = self.alpha
-        first = self._count[idx] == 0
-        if first.any():
-            i = idx[first]
-            self._mean[i] = values[first]
-            self._var[i] = 0.0
-            self._w2[i] = 1.0
-        rest = ~first
-        if rest.any():
-            i = idx[rest]
-            diff = values[rest] - self._mean[i]
-            incr = a * diff
-            self._mean[i] += incr
-            self._var[i] = (1.0 - a) * (self._var[i] + diff * incr)
-            self._w2[i] = (1.0 - a) ** 2 * self._w2[i] + a * a
-        self._count[idx] += 1
+        keep = 1.0 - a
+        keep2 = keep * keep
+        mean_, var_, w_, w2_, count_ = self._mean, self._var, self._w, self._w2, self._count
+        for i, x in zip(idx, values):
+            if count_[i] == 0:
+                mean_[i], var_[i], w_[i], w2_[i] = x, 0.0, 1.0, 1.0
+            elif self.adjust:
+                w_before = keep * w_[i]
+                w = w_before + 1.0
+                diff = x - mean_[i]
+                mean = mean_[i] + diff / w
+                var_[i] = (w_before * var_[i] + diff * (x - mean)) / w
+                mean_[i], w_[i] = mean, w
+                w2_[i] = keep2 * w2_[i] + 1.0
+            else:
+                # W stays exactly 1: the general form reduces to the classic recursion.
+                diff = x - mean_[i]
+                incr = a * diff
+                mean_[i] += incr
+                var_[i] = keep * (var_[i] + diff * incr)
+                w2_[i] = keep2 * w2_[i] + a * a
+            count_[i] += 1
 
     # ------------------------------------------------------------------ Scorer protocol
     def learn_one(self, x: Mapping[str, float]) -> None:
@@ -192,54 +265,65 @@ class AdaptiveBaseline:
         self.update(self.locate(names, add=True), values)
 
     def score_one(self, x: Mapping[str, float]) -> float:
-        """Largest ``|z|`` among the known features of ``x``; 0.0 when none is scorable."""
+        """Largest predictive ``|z|`` (``tail`` of :meth:`compare`) among the known features of
+        ``x``; 0.0 when none is scorable."""
         names, values = split_features(x)
-        z = self.zscores(self.locate(names), values)
-        return float(np.max(np.abs(z))) if z.size else 0.0
+        pairs = [(i, v) for i, v in zip(self.locate(names), values) if i >= 0]
+        _, _, tail, _ = self.compare([i for i, _ in pairs], [v for _, v in pairs])
+        return max(map(abs, tail), default=0.0)
 
     def deviation(self, feature: str, value: float) -> tuple[float, float]:
-        """``(expected, z)`` of one value of ``feature`` against the current baseline."""
-        idx = self.locate([feature])
-        expected = float(self.expected(idx)[0])
-        return expected, float(self.zscores(idx, np.array([float(value)]))[0])
+        """``(expected, z)`` of one value of ``feature`` (``(nan, 0.0)`` if never learned)."""
+        (i,) = self.locate([feature])
+        if i < 0:
+            return math.nan, 0.0
+        expected, z, _, _ = self.compare([i], [float(value)])
+        return expected[0], z[0]
 
     # ------------------------------------------------------------------ state
+    _ARRAYS = (("mean", np.float64), ("var", np.float64), ("w", np.float64),
+               ("w2", np.float64), ("count", np.int64))
+
     def to_state(self) -> dict[str, Any]:
         """Plain-dict state (numpy arrays for the per-feature statistics)."""
-        return {
+        state: dict[str, Any] = {
             "half_life": self.half_life,
+            "adjust": self.adjust,
             "absolute_floor": self.absolute_floor,
             "relative_floor": self.relative_floor,
             "names": list(self._names),
-            "mean": self._mean.copy(),
-            "var": self._var.copy(),
-            "w2": self._w2.copy(),
-            "count": self._count.copy(),
         }
+        for key, dtype in self._ARRAYS:
+            state[key] = np.array(getattr(self, f"_{key}"), dtype=dtype)
+        return state
 
     @classmethod
     def from_state(cls, state: Mapping[str, Any]) -> AdaptiveBaseline:
         """Rebuild a baseline from :meth:`to_state` output; malformed states raise ``CorruptState``."""
         try:
-            model = cls(state["half_life"], absolute_floor=state["absolute_floor"],
+            model = cls(state["half_life"], adjust=state["adjust"],
+                        absolute_floor=state["absolute_floor"],
                         relative_floor=state["relative_floor"])
             names = list(state["names"])
             if not all(isinstance(n, str) for n in names) or len(set(names)) != len(names):
                 raise CorruptState("baseline feature names must be distinct strings")
             n = len(names)
-            arrays = {}
-            for key, dtype in (("mean", np.float64), ("var", np.float64), ("w2", np.float64),
-                               ("count", np.int64)):
+            lists = {}
+            for key, dtype in cls._ARRAYS:
                 arr = state[key]
                 if not isinstance(arr, np.ndarray) or arr.shape != (n,) or arr.dtype != dtype:
                     raise CorruptState(f"baseline {key!r} must be a {np.dtype(dtype)} array of {n}")
-                arrays[key] = arr.copy()
+                lists[key] = arr.tolist()  # exact: float64 -> Python float
         except (KeyError, TypeError, ValueError, SettingsError) as exc:
             raise CorruptState(f"malformed baseline state: {exc}") from exc
+        if any(c < 0 for c in lists["count"]) or not all(
+                math.isfinite(v) for key in ("mean", "var", "w", "w2") for v in lists[key]) or any(
+                w <= 0 for w in lists["w"]):
+            raise CorruptState("baseline statistics must be finite, weights > 0, counts >= 0")
         model._names = names
         model._index = {name: i for i, name in enumerate(names)}
-        model._mean, model._var = arrays["mean"], arrays["var"]
-        model._w2, model._count = arrays["w2"], arrays["count"]
+        for key, _ in cls._ARRAYS:
+            setattr(model, f"_{key}", lists[key])
         return model
 
 

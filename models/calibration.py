@@ -68,15 +68,29 @@ class EmpiricalCalibrator:
             return self._ring[: self._size].copy()
         return np.concatenate([self._ring[self._head:], self._ring[: self._head]])
 
-    def score(self, raw: float) -> float:
-        """Fraction of the history strictly below ``raw`` (0.0 for an empty history)."""
+    def score(self, raw: float, *, count_self: bool = False) -> float:
+        """Fraction of the history strictly below ``raw`` (0.0 for an empty history).
+
+        With ``count_self`` the denominator also counts the window being scored
+        (``below / (len + 1)``), so the largest possible value, ``len / (len + 1)``, grows with
+        the history. A "new maximum" of a short history then ranks below a new maximum of a long
+        one, which matters when calibrated scores are themselves calibrated again (see
+        :class:`models.service_model.ServiceModel`).
+
+        >>> cal = EmpiricalCalibrator(10)
+        >>> for raw in [1.0, 2.0, 3.0]:
+        ...     cal.learn(raw)
+        >>> cal.score(2.5), cal.score(9.0), cal.score(9.0, count_self=True)
+        (0.6666666666666666, 1.0, 0.75)
+        """
         raw = float(raw)
         if math.isnan(raw):
             raise ModelError("cannot calibrate a NaN raw score")
         n = self._size
         if n == 0:
             return 0.0
-        return int(np.searchsorted(self._sorted[:n], raw, side="left")) / n
+        below = int(np.searchsorted(self._sorted[:n], raw, side="left"))
+        return below / (n + 1) if count_self else below / n
 
     def learn(self, raw: float) -> None:
         """Add ``raw`` to the history, evicting the oldest value once full."""
@@ -97,9 +111,9 @@ class EmpiricalCalibrator:
         self._ring[self._head] = raw
         self._head = (self._head + 1) % self.capacity
 
-    def score_learn(self, raw: float) -> float:
+    def score_learn(self, raw: float, *, count_self: bool = False) -> float:
         """:meth:`score` then :meth:`learn` -- the order used for every window."""
-        p = self.score(raw)
+        p = self.score(raw, count_self=count_self)
         self.learn(raw)
         return p
 

@@ -39,13 +39,13 @@ Examples
 >>> for x in [0.5, 0.45, 0.43, 0.44, 0.445, 0.45, 0.0]:
 ...     hst.learn_one({"x": x})
 ...     print(f"{x:.3f} {hst.score_one({'x': x}):.3f}")
-0.500 0.143
-0.450 0.143
-0.430 0.143
-0.440 0.143
-0.445 0.143
-0.450 0.143
-0.000 0.857
+0.500 0.124
+0.450 0.062
+0.430 0.062
+0.440 0.062
+0.445 0.062
+0.450 0.000
+0.000 0.800
 """
 
 from __future__ import annotations
@@ -155,6 +155,11 @@ class HalfSpaceTrees:
         return float(self.n_trees * self.window_size * self.n_nodes)
 
     @property
+    def feature_index(self) -> dict[str, int]:
+        """Position of each tree feature in the vectors of the vector API (empty before build)."""
+        return self._index
+
+    @property
     def ready(self) -> bool:
         """Whether a reference window exists (before that every score is 0)."""
         return not self._first_window
@@ -168,38 +173,43 @@ class HalfSpaceTrees:
         self._index = {n: i for i, n in enumerate(names)}
         self._low = np.array([self.limits.get(n, (0.0, 1.0))[0] for n in names])
         self._high = np.array([self.limits.get(n, (0.0, 1.0))[1] for n in names])
-        n_internal = 2 ** self.height - 1
-        n_f = len(names)
+        n_f, trees = len(names), self.n_trees
         rng = np.random.default_rng(self.seed)
-        feature = np.zeros((self.n_trees, n_internal), dtype=_feature_dtype(n_f))
-        threshold = np.zeros((self.n_trees, n_internal), dtype=np.float64)
-        for t in range(self.n_trees):
-            low = np.empty((n_internal, n_f))
-            high = np.empty((n_internal, n_f))
+        # One level of every tree at a time (heap order is breadth-first): ``low``/``high`` hold
+        # the range of every node of the current level, shape (trees, nodes in level, features).
+        if self.split == "padded":
+            low = np.broadcast_to(self._low, (trees, 1, n_f)).copy()
+            high = np.broadcast_to(self._high, (trees, 1, n_f)).copy()
+        else:
+            s = rng.uniform(self._low, self._high, size=(trees, 1, n_f))
+            r = 2.0 * np.maximum(s - self._low, self._high - s)
+            low, high = s - r, s + r
+        features_by_level, thresholds_by_level = [], []
+        for _ in range(self.height):
+            width = high - low
             if self.split == "padded":
-                low[0], high[0] = self._low, self._high
+                # Feature drawn with probability proportional to its width (inverse CDF).
+                cum = np.cumsum(width, axis=2)
+                u = rng.random(cum.shape[:2]) * cum[:, :, -1]
+                f = np.minimum((cum <= u[:, :, None]).sum(axis=2), n_f - 1)
+                a = np.take_along_axis(low, f[:, :, None], axis=2)[:, :, 0]
+                w = np.take_along_axis(width, f[:, :, None], axis=2)[:, :, 0]
+                at = a + w * (_PADDING + (1.0 - 2.0 * _PADDING) * rng.random(f.shape))
             else:
-                s = rng.uniform(self._low, self._high)
-                r = 2.0 * np.maximum(s - self._low, self._high - s)
-                low[0], high[0] = s - r, s + r
-            # Heap order is breadth-first, so a parent's range is set before its children's.
-            for i in range(n_internal):
-                lo, hi = low[i], high[i]
-                if self.split == "padded":
-                    width = hi - lo
-                    f = int(rng.choice(n_f, p=width / width.sum()))
-                    a, b = lo[f], hi[f]
-                    at = rng.uniform(a + _PADDING * (b - a), b - _PADDING * (b - a))
-                else:
-                    f = int(rng.integers(n_f))
-                    at = 0.5 * (lo[f] + hi[f])
-                feature[t, i], threshold[t, i] = f, at
-                left, right = 2 * i + 1, 2 * i + 2
-                if right < n_internal:
-                    low[left], high[left] = lo, hi
-                    high[left, f] = at
-                    low[right], high[right] = lo, hi
-                    low[right, f] = at
+                f = rng.integers(n_f, size=width.shape[:2])
+                a = np.take_along_axis(low, f[:, :, None], axis=2)[:, :, 0]
+                b = np.take_along_axis(high, f[:, :, None], axis=2)[:, :, 0]
+                at = 0.5 * (a + b)
+            features_by_level.append(f)
+            thresholds_by_level.append(at)
+            # Children of node k of this level are 2k (left: high[f] = at) and 2k + 1 (right).
+            left_high, right_low = high.copy(), low.copy()
+            np.put_along_axis(left_high, f[:, :, None], at[:, :, None], axis=2)
+            np.put_along_axis(right_low, f[:, :, None], at[:, :, None], axis=2)
+            low = np.stack([low, right_low], axis=2).reshape(trees, -1, n_f)
+            high = np.stack([left_high, high], axis=2).reshape(trees, -1, n_f)
+        feature = np.concatenate(features_by_level, axis=1).astype(_feature_dtype(n_f))
+        threshold = np.concatenate(thresholds_by_level, axis=1)
         self._feature = feature
         self._threshold = threshold.astype(np.float32)
         mass = _mass_dtype(self.window_size)
@@ -221,29 +231,34 @@ class HalfSpaceTrees:
         return v
 
     def _path(self, v: np.ndarray) -> np.ndarray:
-        """Node index at every depth of every tree, shape ``(n_trees, height + 1)``."""
-        rows = self._rows[:, 0]
-        node = np.zeros(self.n_trees, dtype=np.intp)
-        path = np.zeros((self.n_trees, self.height + 1), dtype=np.intp)
-        feature, threshold = self._feature, self._threshold
-        for d in range(1, self.height + 1):
-            go_right = v[feature[rows, node]] >= threshold[rows, node]
-            node = 2 * node + 1 + go_right
-            path[:, d] = node
-        return path
+        """Flat node index (``tree * n_nodes + node``) at every depth, shape ``(n_trees, height + 1)``."""
+        # One vectorised comparison at every internal node of every tree, then a plain-Python
+        # walk over the resulting bytes: for trees this small that beats ``height`` rounds of
+        # numpy gathers, which pay a fixed overhead per call.
+        go_right = (v[self._feature] >= self._threshold).tobytes()
+        n_internal, n_nodes, height = 2 ** self.height - 1, self.n_nodes, self.height
+        out: list[int] = []
+        for t in range(self.n_trees):
+            base, offset, node = t * n_internal, t * n_nodes, 0
+            out.append(offset)
+            for _ in range(height):
+                node = 2 * node + 1 + go_right[base + node]
+                out.append(offset + node)
+        return np.array(out, dtype=np.intp).reshape(self.n_trees, height + 1)
 
     def _score_path(self, path: np.ndarray) -> float:
         if self._first_window:
             return 0.0
-        r = self._r_mass[self._rows, path].astype(np.float64)
-        below = r < self.size_limit
-        # Keep every node up to and including the first one under the size limit.
-        keep = (np.cumsum(below, axis=1) - below) == 0
-        score = float(np.sum(r * self._weights * keep))
-        return 1.0 - score / self.max_score
+        r = self._r_mass.ravel()[path].astype(np.float64)
+        # Masses never grow along a path (a child sees a subset of its parent's observations),
+        # so "up to and including the first node under the size limit" is "the root, plus every
+        # node whose parent is at or above the limit".
+        weighted = r * self._weights
+        score = weighted[:, 0].sum() + weighted[:, 1:][r[:, :-1] >= self.size_limit].sum()
+        return 1.0 - float(score) / self.max_score
 
     def _learn_path(self, path: np.ndarray) -> None:
-        self._l_mass[self._rows, path] += 1
+        self._l_mass.ravel()[path] += 1  # a view: the mass arrays are C-contiguous
         self.counter += 1
         if self.counter == self.window_size:
             self._r_mass[...] = self._l_mass

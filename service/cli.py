@@ -56,13 +56,19 @@ def _state_key() -> bytes | None:
 
 
 def cmd_run(args: argparse.Namespace) -> int:
-    from service.embedded import RunOptions, run_embedded
-
     config = load_config(args.config)
     stop = threading.Event()
     _install_stop_handlers(stop)
+    if args.input is None and config.kafka is not None:
+        from service.kafka_bus import KafkaRunner
+
+        KafkaRunner(config, stop, state_key=_state_key(), http_listen=args.listen).run()
+        return EXIT_OK
+
+    from service.embedded import RunOptions, run_embedded
+
     opts = RunOptions(
-        input=args.input,
+        input=args.input or "-",
         output=args.output,
         rejects=args.rejects,
         state_dir=args.state_dir,
@@ -113,10 +119,12 @@ def build_parser() -> argparse.ArgumentParser:
     sub = p.add_subparsers(dest="command", required=True, metavar="COMMAND")
 
     r = sub.add_parser("run", help="score a live stream until stopped", epilog=EPILOG,
-                       description="Score a live stream. Embedded mode reads JSON lines from --input; learned state and "
-                       "positions are saved to the state directory and restored on the next start.")
+                       description="Score a live stream. With a [kafka] table in the config and no --input, it consumes the "
+                       "input topics with exactly-once output; otherwise it reads JSON lines from --input, saves learned "
+                       "state and positions to the state directory and restores them on the next start.")
     r.add_argument("--config", help="config file (TOML); built-in defaults when omitted")
-    r.add_argument("--input", default="-", help="input JSON lines: a file, or - for stdin (default)")
+    r.add_argument("--input", default=None,
+                   help="input JSON lines: a file, or - for stdin (the default, unless the config has a [kafka] table)")
     r.add_argument("--output", default="-", help="score messages as JSON lines: a file, or - for stdout (default)")
     r.add_argument("--rejects", default=None, help="rejected messages with their reasons: a file, or - for stdout")
     r.add_argument("--state-dir", default=None, help="state directory (default: the config's state.dir)")

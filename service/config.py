@@ -43,6 +43,7 @@ __all__ = [
     "StateConfig",
     "HttpConfig",
     "LimitsConfig",
+    "KafkaConfig",
     "ServiceSettings",
     "FeatureSpec",
     "load_config",
@@ -166,6 +167,42 @@ class LimitsConfig(_Frozen):
     )
 
 
+class KafkaConfig(_Frozen):
+    """The Kafka bus. When this table is present, ``tidewatch run`` without ``--input`` reads from Kafka.
+
+    Every key can be overridden by an environment variable ``TIDEWATCH_KAFKA_<KEY>`` (upper case;
+    lists comma-separated), and any librdkafka property by ``TIDEWATCH_KAFKA_PROPERTY_<NAME>`` with
+    dots written as underscores (``TIDEWATCH_KAFKA_PROPERTY_SECURITY_PROTOCOL=SSL``).
+    """
+
+    bootstrap_servers: str = Field("127.0.0.1:9092", min_length=1, description="Broker list, host:port[,host:port].")
+    input_topics: tuple[str, ...] = Field(("tidewatch-metrics",), min_length=1, description="Topics of metric messages.")
+    output_topic: str = Field("tidewatch-scores", min_length=1, description="Where score messages go, keyed by service.")
+    rejects_topic: str = Field("tidewatch-rejects", min_length=1, description="Dead-letter topic: original bytes, reason in headers.")
+    changelog_topic: str = Field(
+        "tidewatch-state", min_length=1, description="Compacted topic holding each service's model and open windows."
+    )
+    repartition_topic: str = Field(
+        "tidewatch-repartition", min_length=1, description="Internal topic keyed by service, used when input_keyed is false."
+    )
+    input_keyed: bool = Field(
+        True, description="True when producers key messages by service; false routes input through the repartition topic."
+    )
+    group_id: str = Field("tidewatch", min_length=1, description="Consumer group shared by every instance.")
+    instance_id: str | None = Field(
+        None, description="Stable per-instance name (default: the host name); the transactional id is derived from it."
+    )
+    commit_interval: Duration = Field(1.0, gt=0, description="How often scores, state and offsets are committed together.")
+    batch_size: int = Field(2000, ge=1, le=1_000_000, description="Messages taken from the consumer per poll.")
+    create_topics: bool = Field(True, description="Create the output, rejects, changelog and repartition topics if missing.")
+    replication_factor: int = Field(1, ge=1, le=16, description="Replication factor of topics tidewatch creates.")
+    properties: dict[str, str | int | float | bool] = Field(
+        default_factory=dict, description="librdkafka properties for every client (security, timeouts, ...)."
+    )
+    consumer_properties: dict[str, str | int | float | bool] = Field(default_factory=dict)
+    producer_properties: dict[str, str | int | float | bool] = Field(default_factory=dict)
+
+
 class Config(_Frozen):
     """The whole config file."""
 
@@ -174,6 +211,7 @@ class Config(_Frozen):
     state: StateConfig = Field(default_factory=StateConfig)
     http: HttpConfig = Field(default_factory=HttpConfig)
     limits: LimitsConfig = Field(default_factory=LimitsConfig)
+    kafka: KafkaConfig | None = Field(None, description="The Kafka bus; absent means embedded mode only.")
 
     def settings_for(self, service: str) -> "ServiceSettings":
         """The resolved settings of one service (first matching rule wins)."""
@@ -253,12 +291,41 @@ def _format_problem(source: str, err: dict[str, Any]) -> str:
     return f"{source}: {loc}: {msg} (got {value!r})"
 
 
-def parse_config(text: str, source: str = "<config>") -> Config:
-    """Parse and validate config text; raise :class:`ConfigError` listing every problem."""
+_LIST_KEYS = {"input_topics"}
+
+
+def _apply_env(data: dict[str, Any], environ: dict[str, str]) -> dict[str, Any]:
+    """Overlay ``TIDEWATCH_KAFKA_*`` environment variables onto the ``[kafka]`` table."""
+    keys = {k for k in environ if k.startswith("TIDEWATCH_KAFKA_")}
+    if not keys:
+        return data
+    kafka = dict(data.get("kafka") or {})
+    props = dict(kafka.get("properties") or {})
+    for env_key in sorted(keys):
+        value = environ[env_key]
+        name = env_key[len("TIDEWATCH_KAFKA_"):].lower()
+        if name.startswith("property_"):
+            props[name[len("property_"):].replace("_", ".")] = value
+        elif name in _LIST_KEYS:
+            kafka[name] = [v.strip() for v in value.split(",") if v.strip()]
+        else:
+            kafka[name] = value
+    if props:
+        kafka["properties"] = props
+    return {**data, "kafka": kafka}
+
+
+def parse_config(text: str, source: str = "<config>", environ: dict[str, str] | None = None) -> Config:
+    """Parse and validate config text; raise :class:`ConfigError` listing every problem.
+
+    ``environ`` (default: none) supplies ``TIDEWATCH_KAFKA_*`` overrides.
+    """
     try:
         data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise ConfigError(f"{source}: not valid TOML: {exc}") from exc
+    if environ:
+        data = _apply_env(data, environ)
     try:
         config = Config.model_validate(data)
     except ValidationError as exc:
@@ -274,13 +341,14 @@ def parse_config(text: str, source: str = "<config>") -> Config:
     return config
 
 
-def load_config(path: str | os.PathLike[str] | None) -> Config:
-    """Load a config file; ``None`` gives the built-in defaults."""
+def load_config(path: str | os.PathLike[str] | None, environ: dict[str, str] | None = None) -> Config:
+    """Load a config file (``None``: built-in defaults) with environment overrides applied."""
+    env = dict(os.environ) if environ is None else environ
     if path is None:
-        return Config()
+        return parse_config("", "<defaults>", env)
     p = Path(path)
     try:
         text = p.read_text(encoding="utf-8")
     except (OSError, UnicodeDecodeError) as exc:
         raise ConfigError(f"{p}: cannot read the config file: {exc}") from exc
-    return parse_config(text, str(p))
+    return parse_config(text, str(p), env)

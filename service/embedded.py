@@ -82,6 +82,7 @@ class _Loop:
         self.follow = follow
         self.stop = stop
         self.pending = b""
+        self.on_idle = None  # called while following a file that has no new lines
 
     def offset(self) -> int:
         """Byte offset just past the last line handed to the engine."""
@@ -94,6 +95,8 @@ class _Loop:
             if not lines:
                 if self.follow:
                     self.engine.stats.heartbeat = time.monotonic()
+                    if self.on_idle is not None:
+                        self.on_idle()
                     self.stop.wait(0.2)
                     continue
                 return
@@ -250,7 +253,12 @@ def run_embedded(config: Config, opts: RunOptions, stop: threading.Event) -> Run
     loop = _Loop(engine, src, f, line=start_line, follow=opts.follow, stop=stop)
     stats.ready = True
 
+    saved_at_offset = -1
+
     def checkpoint() -> None:
+        nonlocal saved_at_offset
+        if loop.offset() == saved_at_offset and not engine.registry.dirty and in_path:
+            return  # nothing new since the last checkpoint
         out_off = scores.sync()
         rej_off = rej.sync() if rej is not None else None
         stats.high_marks[SOURCE_ID] = src.high_mark
@@ -265,6 +273,7 @@ def run_embedded(config: Config, opts: RunOptions, stop: threading.Event) -> Run
         try:
             store.save(engine.registry.models, engine.registry.dirty, runtime)
             engine.registry.dirty.clear()
+            saved_at_offset = runtime["input"]["offset"]
         except StateStoreError as exc:
             # Scoring goes on; the next interval tries again with everything still dirty.
             log.error("checkpoint failed; will retry", extra={"event": "state_save_failed", "error": str(exc)})
@@ -280,6 +289,7 @@ def run_embedded(config: Config, opts: RunOptions, stop: threading.Event) -> Run
             checkpoint()
             next_at = time.monotonic() + interval
 
+    loop.on_idle = on_batch
     try:
         loop.pump(on_batch)
         if not stop.is_set():

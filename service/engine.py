@@ -66,12 +66,25 @@ class Engine:
         self.on_reject = on_reject
         self.now = now
         self.sources: dict[str, SourceWindows] = {}
+        # service -> the source its messages arrive on (its state is kept with that source)
+        self.owner: dict[str, SourceWindows] = {}
 
     def source(self, source_id: str) -> SourceWindows:
         src = self.sources.get(source_id)
         if src is None:
             src = self.sources[source_id] = SourceWindows()
         return src
+
+    def drop_source(self, source_id: str) -> list[str]:
+        """Forget a source and every service it owns (partition revoked or lost); return those services."""
+        src = self.sources.pop(source_id, None)
+        if src is None:
+            return []
+        gone = [s for s, o in self.owner.items() if o is src]
+        for service in gone:
+            del self.owner[service]
+            self.registry.drop(service)
+        return gone
 
     def reject(self, code: str, detail: str, raw: bytes, origin: Any) -> None:
         self.stats.rejected[code] += 1
@@ -85,6 +98,7 @@ class Engine:
         decode = self.decoder.decode
         settings_of = self.registry.settings
         add = src.add
+        owner = self.owner
         accepted = 0
         for i, raw in enumerate(raws):
             try:
@@ -92,6 +106,14 @@ class Engine:
             except Rejected as r:
                 self.reject(r.code, r.detail, raw, origin_of(i))
                 continue
+            o = owner.get(service)
+            if o is not src:
+                if o is None:
+                    owner[service] = src
+                else:
+                    # One service's state lives with one source; a second source would fork it.
+                    self.reject("unaligned_key", f"service {service!r} already arrives on another partition", raw, origin_of(i))
+                    continue
             s = settings_of(service)
             if not add(service, ts, metrics, s.window, s.lateness):
                 self.reject("late", f"event time {ts!r} is behind the watermark of service {service!r}", raw, origin_of(i))

@@ -80,10 +80,14 @@ class SourceWindows:
     order, so the output order depends only on this source's input order.
     """
 
-    __slots__ = ("high_mark", "open", "_heap")
+    __slots__ = ("high_mark", "open", "_heap", "touched", "tag")
 
-    def __init__(self) -> None:
+    def __init__(self, tag: object = None) -> None:
+        # What the bus layer knows this source by (the partition number on Kafka).
+        self.tag = tag
         self.high_mark = -math.inf
+        # services whose open windows changed since the caller last cleared this (changelog writes)
+        self.touched: set[str] = set()
         self.open: dict[str, dict[float, Window]] = {}
         # (close_at, service, start): ordering ties by name keeps restored runs identical.
         self._heap: list[tuple[float, str, float]] = []
@@ -101,6 +105,7 @@ class SourceWindows:
             window = per_service[start] = Window(start, start + length)
             heapq.heappush(self._heap, (close_at, service, start))
         window.count += 1
+        self.touched.add(service)
         aggs = window.aggs
         for name, value in metrics.items():
             agg = aggs.get(name)
@@ -134,6 +139,7 @@ class SourceWindows:
                 self.high_mark = close_at
             per_service = self.open[service]
             out.append((service, per_service.pop(start)))
+            self.touched.add(service)
             if not per_service:
                 del self.open[service]
         return out

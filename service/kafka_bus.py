@@ -1,0 +1,517 @@
+"""``tidewatch run`` on Kafka: exactly-once consume, score, produce.
+
+One transactional producer per process (KIP-447 style). At each commit interval,
+inside one transaction, go: the score messages of the windows closed since the
+last commit, the dead-lettered rejects, the changelog records of every service
+whose state changed, and the consumer offsets (``send_offsets_to_transaction`` with
+the consumer's group metadata). A read_committed reader of the score topic
+therefore sees each (service, window) once, whatever crashes in between.
+
+State lives in a compacted changelog topic, partition-aligned with the scoring
+topic. On assignment the assigned partitions' services are restored from it
+(read_committed) before any of their messages is processed; on revocation the
+open transaction is committed first; on loss it is aborted and the state dropped.
+When a transaction must be aborted, every assigned partition is rewound to its
+committed offset and its state restored from the changelog, so the work is redone
+exactly. Fatal errors (fenced producer and the like) raise :class:`BusFatalError`
+and the process exits non-zero so the orchestrator restarts it.
+
+When producers do not key input by service (``input_keyed = false``), input is
+first forwarded, in the same transactions, to an internal repartition topic keyed
+by service; the scoring stage reads that topic, so state stays partition-aligned.
+"""
+
+from __future__ import annotations
+
+import logging
+import socket
+import threading
+import time
+from collections.abc import Callable
+from typing import Any, TypeVar
+
+from confluent_kafka import OFFSET_BEGINNING, Consumer, KafkaError, KafkaException, Producer, TopicPartition
+from confluent_kafka.admin import AdminClient, NewTopic
+
+from models import decode_state, encode_state
+from models.errors import StateError
+from service.changelog import PartitionState, apply_record, encode_mark, encode_windows, mark_key, model_key, windows_key
+from service.config import Config, KafkaConfig
+from service.decode import Rejected
+from service.engine import Engine
+from service.errors import BusFatalError, TidewatchError
+from service.httpserver import MetricsServer
+from service.metrics import build_registry
+from service.stats import RuntimeStats
+from service.windows import Window
+
+__all__ = ["KafkaRunner", "consumer_settings", "producer_settings"]
+
+log = logging.getLogger("tidewatch.kafka")
+
+T = TypeVar("T")
+_CALL_TIMEOUT = 30.0  # seconds for one transactional call before it is retried
+
+
+class _AbortNeeded(Exception):
+    """The transaction must be aborted and the work since the last commit redone."""
+
+
+def _common(k: KafkaConfig) -> dict[str, Any]:
+    conf: dict[str, Any] = {"bootstrap.servers": k.bootstrap_servers}
+    conf.update(k.properties)
+    return conf
+
+
+def consumer_settings(k: KafkaConfig) -> dict[str, Any]:
+    conf = _common(k)
+    conf.update(
+        {
+            "group.id": k.group_id,
+            # Offsets are committed inside the producer's transaction, never by the consumer.
+            "enable.auto.commit": False,
+            "enable.auto.offset.store": False,
+            # librdkafka's default already, stated because exactly-once depends on it: the
+            # repartition topic is written transactionally and aborted writes must stay unseen.
+            "isolation.level": "read_committed",
+            # A new group starts at the oldest retained message so nothing produced before the
+            # first start is skipped.
+            "auto.offset.reset": "earliest",
+        }
+    )
+    conf.update(k.consumer_properties)
+    return conf
+
+
+def producer_settings(k: KafkaConfig, instance: str) -> dict[str, Any]:
+    conf = _common(k)
+    conf.update(
+        {
+            # Stable across restarts of this instance, so a restarted process fences its previous
+            # incarnation and aborts the transaction it left open at once (no waiting for the timeout).
+            "transactional.id": f"{k.group_id}.{instance}",
+            # Key -> partition exactly as Java producers place keys, so scores and repartitioned
+            # input land where JVM consumers and Kafka Streams expect them.
+            "partitioner": "murmur2_random",
+            # Bounds how long a crashed, never-restarted instance's open transaction can hold back
+            # read_committed readers; well above the commit interval to ride out broker hiccups.
+            "transaction.timeout.ms": 60000,
+            # Scores of one commit interval go out in a few large batches; the commit flushes anyway.
+            "linger.ms": 20,
+        }
+    )
+    conf.update(k.producer_properties)
+    return conf
+
+
+class KafkaRunner:
+    """Runs the exactly-once loop until ``stop`` is set.
+
+    Parameters
+    ----------
+    config
+        The loaded config; ``config.kafka`` must be set.
+    stop
+        Set by the signal handler: finish the batch, commit, leave the group.
+    state_key
+        HMAC key for model records, or None.
+    """
+
+    def __init__(self, config: Config, stop: threading.Event, *, state_key: bytes | None = None,
+                 stats: RuntimeStats | None = None, http_listen: str | None = None) -> None:
+        if config.kafka is None:
+            raise TidewatchError("the config has no [kafka] table")
+        self.config = config
+        self.k = k = config.kafka
+        self.stop = stop
+        self.state_key = state_key
+        self.stats = stats if stats is not None else RuntimeStats()
+        self.instance = k.instance_id or socket.gethostname()
+        self.http_listen = config.http.listen if http_listen is None else http_listen
+        # The topic whose partitions carry state: the input itself, or the repartition topic.
+        self.scoring_topics = set(k.input_topics) if k.input_keyed else {k.repartition_topic}
+        self.forward_topics = set() if k.input_keyed else set(k.input_topics)
+        self.engine = Engine(config, on_score=self._on_score, on_reject=self._on_reject, stats=self.stats)
+        self.consumer: Consumer | None = None
+        self.producer: Producer | None = None
+        self.in_txn = False
+        self.pending_offsets: dict[tuple[str, int], int] = {}
+        self.assigned: set[tuple[str, int]] = set()
+        self._abort_pending = False
+
+    # --- set-up ----------------------------------------------------------------------
+    def _ensure_topics(self) -> None:
+        k = self.k
+        admin = AdminClient(_common(k))
+        md = admin.list_topics(timeout=_CALL_TIMEOUT)
+        counts = set()
+        for t in k.input_topics:
+            if t not in md.topics or md.topics[t].error is not None:
+                raise TidewatchError(f"input topic {t!r} does not exist on {k.bootstrap_servers}")
+            counts.add(len(md.topics[t].partitions))
+        if len(counts) != 1:
+            raise TidewatchError(f"input topics {list(k.input_topics)} must have the same number of partitions")
+        n = counts.pop()
+        wanted = {
+            k.output_topic: (n, {}),
+            k.rejects_topic: (n, {}),
+            # Compacted: only the latest state of each service is needed to restore it.
+            k.changelog_topic: (n, {"cleanup.policy": "compact", "min.compaction.lag.ms": "0"}),
+        }
+        if not k.input_keyed:
+            wanted[k.repartition_topic] = (n, {})
+        missing = [t for t in wanted if t not in md.topics]
+        if missing and k.create_topics:
+            futures = admin.create_topics(
+                [NewTopic(t, num_partitions=wanted[t][0], replication_factor=k.replication_factor, config=wanted[t][1])
+                 for t in missing]
+            )
+            for t, f in futures.items():
+                try:
+                    f.result(_CALL_TIMEOUT)
+                except KafkaException as exc:
+                    if exc.args[0].code() != KafkaError.TOPIC_ALREADY_EXISTS:
+                        raise TidewatchError(f"cannot create topic {t!r}: {exc}") from exc
+        elif missing:
+            raise TidewatchError(f"topics {missing} do not exist and create_topics is false")
+        md = admin.list_topics(timeout=_CALL_TIMEOUT)
+        state_parts = len(md.topics[k.changelog_topic].partitions) if k.changelog_topic in md.topics else n
+        scoring_parts = n if k.input_keyed else len(md.topics[k.repartition_topic].partitions)
+        if state_parts != scoring_parts:
+            raise TidewatchError(
+                f"changelog topic {k.changelog_topic!r} has {state_parts} partitions but the scoring topic has "
+                f"{scoring_parts}; they must be equal (partition p of the changelog holds partition p's services)"
+            )
+
+    # --- callbacks from the engine (inside a transaction) ----------------------------------
+    def _produce(self, topic: str, value: bytes, key: bytes | None = None, partition: int | None = None,
+                 headers: list | None = None) -> None:
+        p = self.producer
+        kwargs: dict[str, Any] = {"value": value}
+        if key is not None:
+            kwargs["key"] = key
+        if partition is not None:
+            kwargs["partition"] = partition
+        if headers:
+            kwargs["headers"] = headers
+        while True:
+            try:
+                p.produce(topic, **kwargs)
+                return
+            except BufferError:
+                # The local queue is full: serve delivery reports until there is room.
+                p.poll(0.05)
+            except KafkaException as exc:
+                self._classify(exc)
+
+    def _on_score(self, service: str, payload: bytes, window: Window) -> None:
+        self._produce(self.k.output_topic, payload, key=service.encode("utf-8"))
+
+    def _on_reject(self, code: str, detail: str, raw: bytes, origin: Any) -> None:
+        topic, partition, offset = origin
+        headers = [
+            ("tidewatch-reason", code.encode()),
+            ("tidewatch-detail", detail.encode("utf-8", errors="replace")),
+            ("tidewatch-origin", f"{topic}/{partition}/{offset}".encode("utf-8", errors="replace")),
+        ]
+        self._produce(self.k.rejects_topic, raw, headers=headers)
+
+    # --- transactions ------------------------------------------------------------------
+    def _classify(self, exc: KafkaException) -> None:
+        err = exc.args[0] if exc.args else None
+        if isinstance(err, KafkaError):
+            if err.fatal():
+                raise BusFatalError(f"fatal Kafka error, exiting so the orchestrator restarts: {err.str()}") from exc
+            if err.txn_requires_abort():
+                raise _AbortNeeded(err.str()) from exc
+            if err.retriable():
+                return
+        raise _AbortNeeded(str(exc)) from exc
+
+    def _call(self, fn: Callable[[], T]) -> T:
+        """Call a transactional API, retrying what is retriable."""
+        while True:
+            try:
+                return fn()
+            except KafkaException as exc:
+                self._classify(exc)
+                log.warning("retriable Kafka error; retrying", extra={"event": "kafka_retry", "error": str(exc)})
+                time.sleep(0.2)
+
+    def _begin(self) -> None:
+        if not self.in_txn:
+            self._call(self.producer.begin_transaction)
+            self.in_txn = True
+
+    def _write_state(self) -> None:
+        k = self.k
+        engine = self.engine
+        for source_id, src in engine.sources.items():
+            if not src.touched:
+                continue
+            partition = int(source_id.rpartition(":")[2])
+            for service in src.touched:
+                self._produce(k.changelog_topic, encode_windows(source_id, src.service_state(service)),
+                              key=windows_key(service), partition=partition)
+            src.touched.clear()
+            if src.high_mark != float("-inf"):
+                self._produce(k.changelog_topic, encode_mark(src.high_mark), key=mark_key(source_id), partition=partition)
+        registry = engine.registry
+        for service in sorted(registry.dirty):
+            model = registry.models.get(service)
+            src = engine.owner.get(service)
+            if model is None or src is None:
+                continue
+            partition = src.tag
+            self._produce(k.changelog_topic, encode_state(service, model, key=self.state_key),
+                          key=model_key(service), partition=partition)
+        registry.dirty.clear()
+
+    def commit(self) -> None:
+        """Commit scores, state and offsets in one transaction (begun if offsets moved)."""
+        if not self.in_txn and not self.pending_offsets:
+            return
+        try:
+            self._begin()
+            self._write_state()
+            if self.pending_offsets:
+                offsets = [TopicPartition(t, p, o) for (t, p), o in sorted(self.pending_offsets.items())]
+                meta = self.consumer.consumer_group_metadata()
+                self._call(lambda: self.producer.send_offsets_to_transaction(offsets, meta, _CALL_TIMEOUT))
+            self._call(lambda: self.producer.commit_transaction(_CALL_TIMEOUT))
+            self.in_txn = False
+            self.pending_offsets.clear()
+        except _AbortNeeded as exc:
+            log.warning("transaction aborted; rewinding to the committed offsets", extra={"event": "txn_abort", "error": str(exc)})
+            self._abort_and_rewind()
+
+    def _abort_and_rewind(self) -> None:
+        if self.in_txn:
+            try:
+                self.producer.abort_transaction(_CALL_TIMEOUT)
+            except KafkaException as exc:
+                err = exc.args[0]
+                if isinstance(err, KafkaError) and err.fatal():
+                    raise BusFatalError(f"fatal Kafka error while aborting: {err.str()}") from exc
+            self.in_txn = False
+        self.pending_offsets.clear()
+        parts = sorted(self.assigned)
+        for topic, partition in parts:
+            self._drop(topic, partition)
+        self._restore([(t, p) for t, p in parts if t in self.scoring_topics])
+        committed = self.consumer.committed([TopicPartition(t, p) for t, p in parts], timeout=_CALL_TIMEOUT)
+        for tp in committed:
+            offset = tp.offset if tp.offset >= 0 else OFFSET_BEGINNING
+            self.consumer.seek(TopicPartition(tp.topic, tp.partition, offset))
+
+    # --- state per partition ---------------------------------------------------------
+    @staticmethod
+    def _source_id(topic: str, partition: int) -> str:
+        return f"{topic}:{partition}"
+
+    def _drop(self, topic: str, partition: int) -> None:
+        self.engine.drop_source(self._source_id(topic, partition))
+        self.stats.high_marks.pop(self._source_id(topic, partition), None)
+
+    def _restore(self, parts: list[tuple[str, int]]) -> None:
+        """Read the changelog partitions of ``parts`` and install their services."""
+        if not parts:
+            return
+        started = time.monotonic()
+        k = self.k
+        partitions = sorted({p for _, p in parts})
+        conf = _common(k)
+        conf.update(
+            {
+                "group.id": f"{k.group_id}.restore",  # never subscribes or commits; required by the client
+                "enable.auto.commit": False,
+                "isolation.level": "read_committed",  # only committed state counts
+                "enable.partition.eof": True,  # tells us when a partition has been read to its end
+                "auto.offset.reset": "earliest",
+            }
+        )
+        restorer = Consumer(conf)
+        states: dict[int, PartitionState] = {p: PartitionState() for p in partitions}
+        try:
+            todo = set()
+            assignment = []
+            for p in partitions:
+                low, high = restorer.get_watermark_offsets(TopicPartition(k.changelog_topic, p), timeout=_CALL_TIMEOUT)
+                if high > low:
+                    todo.add(p)
+                    assignment.append(TopicPartition(k.changelog_topic, p, OFFSET_BEGINNING))
+            if assignment:
+                restorer.assign(assignment)
+            while todo:
+                for msg in restorer.consume(num_messages=5000, timeout=0.5):
+                    err = msg.error()
+                    if err is not None:
+                        if err.code() == KafkaError._PARTITION_EOF:
+                            todo.discard(msg.partition())
+                            continue
+                        if err.fatal():
+                            raise BusFatalError(f"fatal error reading the changelog: {err.str()}")
+                        continue
+                    apply_record(states[msg.partition()], msg.key(), msg.value())
+                if self.stop.is_set() and not todo:
+                    break
+        finally:
+            restorer.close()
+        n_models = 0
+        for topic, partition in parts:
+            source_id = self._source_id(topic, partition)
+            src = self.engine.source(source_id)
+            src.tag = partition
+            st = states[partition]
+            for line in st.refused:
+                self.stats.state_records_refused["CorruptState"] += 1
+                log.error("changelog record refused", extra={"event": "state_refused", "detail": line})
+            mark = st.marks.get(source_id)
+            if mark is not None and mark > src.high_mark:
+                src.high_mark = mark
+            for service, doc in st.windows.items():
+                if doc["source"] != source_id:
+                    continue
+                settings = self.engine.registry.settings(service)
+                src.restore_service(service, doc["windows"], settings.lateness)
+                self.engine.owner[service] = src
+            for service, blob in st.models.items():
+                owner_doc = st.windows.get(service)
+                if owner_doc is not None and owner_doc["source"] != source_id:
+                    continue
+                try:
+                    name, model = decode_state(blob, key=self.state_key)
+                except StateError as exc:
+                    self.stats.state_records_refused[type(exc).__name__] += 1
+                    log.error("model record refused; the service starts fresh",
+                              extra={"event": "state_refused", "service": service, "error": str(exc)})
+                    continue
+                self.engine.registry.put(name, model)
+                self.engine.owner.setdefault(name, src)
+                n_models += 1
+            src.touched.clear()
+        log.info("state restored", extra={"event": "state_restored", "partitions": partitions, "models": n_models,
+                                          "seconds": round(time.monotonic() - started, 3)})
+
+    # --- rebalance callbacks -----------------------------------------------------------
+    def _on_assign(self, consumer: Consumer, partitions: list[TopicPartition]) -> None:
+        parts = [(tp.topic, tp.partition) for tp in partitions]
+        self.assigned.update(parts)
+        self._restore([(t, p) for t, p in parts if t in self.scoring_topics])
+        log.info("partitions assigned", extra={"event": "assigned", "partitions": sorted(parts)})
+
+    def _on_revoke(self, consumer: Consumer, partitions: list[TopicPartition]) -> None:
+        # Hand over cleanly: everything done so far is committed before another member takes over.
+        self.commit()
+        for tp in partitions:
+            self._drop(tp.topic, tp.partition)
+            self.assigned.discard((tp.topic, tp.partition))
+            self.pending_offsets.pop((tp.topic, tp.partition), None)
+        log.info("partitions revoked", extra={"event": "revoked", "partitions": sorted((tp.topic, tp.partition) for tp in partitions)})
+
+    def _on_lost(self, consumer: Consumer, partitions: list[TopicPartition]) -> None:
+        # Another member may already own them: nothing of ours about them may be committed.
+        if self.in_txn:
+            try:
+                self.producer.abort_transaction(_CALL_TIMEOUT)
+            except KafkaException:
+                pass
+            self.in_txn = False
+        for tp in partitions:
+            self._drop(tp.topic, tp.partition)
+            self.assigned.discard((tp.topic, tp.partition))
+        self.pending_offsets.clear()
+        # What this transaction held for partitions we still own must be redone too.
+        self._abort_pending = bool(self.assigned)
+        log.warning("partitions lost", extra={"event": "lost", "partitions": sorted((tp.topic, tp.partition) for tp in partitions)})
+
+    # --- the loop ------------------------------------------------------------------------
+    def _process(self, msgs: list) -> None:
+        engine = self.engine
+        i, n = 0, len(msgs)
+        while i < n:
+            msg = msgs[i]
+            err = msg.error()
+            if err is not None:
+                if err.fatal():
+                    raise BusFatalError(f"fatal consumer error: {err.str()}")
+                log.warning("consumer error", extra={"event": "consumer_error", "error": err.str()})
+                i += 1
+                continue
+            topic, partition = msg.topic(), msg.partition()
+            j = i + 1
+            while j < n and msgs[j].error() is None and msgs[j].partition() == partition and msgs[j].topic() == topic:
+                j += 1
+            run = msgs[i:j]
+            self._begin()
+            if topic in self.forward_topics:
+                self._forward(run)
+            else:
+                src = engine.source(self._source_id(topic, partition))
+                src.tag = partition
+                values = [m.value() or b"" for m in run]
+                engine.feed(src, values, lambda idx, run=run: (run[idx].topic(), run[idx].partition(), run[idx].offset()))
+                if src.high_mark != float("-inf"):
+                    self.stats.high_marks[self._source_id(topic, partition)] = src.high_mark
+            self.pending_offsets[(topic, partition)] = run[-1].offset() + 1
+            i = j
+
+    def _forward(self, run: list) -> None:
+        """Unkeyed input: validate, then re-key by service onto the repartition topic."""
+        decode = self.engine.decoder.decode
+        for m in run:
+            raw = m.value() or b""
+            try:
+                service, _ts, _metrics = decode(raw)
+            except Rejected as r:
+                self.engine.reject(r.code, r.detail, raw, (m.topic(), m.partition(), m.offset()))
+                continue
+            self._produce(self.k.repartition_topic, raw, key=service.encode("utf-8"))
+
+    def run(self) -> None:
+        k = self.k
+        self._ensure_topics()
+        self.producer = Producer(producer_settings(k, self.instance))
+        self._call(lambda: self.producer.init_transactions(_CALL_TIMEOUT))
+        self.consumer = Consumer(consumer_settings(k))
+        topics = sorted(self.scoring_topics | self.forward_topics)
+        self.consumer.subscribe(topics, on_assign=self._on_assign, on_revoke=self._on_revoke, on_lost=self._on_lost)
+        server = None
+        if self.http_listen:
+            registry = build_registry(self.stats, lambda: len(self.engine.registry.models), self.config.limits.max_service_series)
+            server = MetricsServer(self.http_listen, registry, self.stats).start()
+        self.stats.ready = True
+        log.info("consuming", extra={"event": "started", "topics": topics, "instance": self.instance,
+                                     "transactional_id": f"{k.group_id}.{self.instance}"})
+        interval = k.commit_interval
+        next_commit = time.monotonic() + interval
+        try:
+            while not self.stop.is_set():
+                msgs = self.consumer.consume(num_messages=k.batch_size, timeout=0.1)
+                self.stats.heartbeat = time.monotonic()
+                if self._abort_pending:
+                    self._abort_pending = False
+                    self._abort_and_rewind()
+                    continue
+                try:
+                    if msgs:
+                        self._process(msgs)
+                    self.producer.poll(0)
+                except _AbortNeeded as exc:
+                    log.warning("transaction must abort; rewinding", extra={"event": "txn_abort", "error": str(exc)})
+                    self._abort_and_rewind()
+                    continue
+                if time.monotonic() >= next_commit:
+                    self.commit()
+                    next_commit = time.monotonic() + interval
+            self.commit()
+        finally:
+            try:
+                # Leaves the group; the revoke callback commits anything still open.
+                self.consumer.close()
+            except (KafkaException, RuntimeError) as exc:
+                log.warning("consumer close failed", extra={"event": "close_failed", "error": str(exc)})
+            if server is not None:
+                server.stop()
+            self.producer.flush(10)
+        log.info("stopped cleanly", extra={"event": "stopped", "windows": self.stats.windows_closed})
