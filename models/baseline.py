@@ -28,8 +28,13 @@ starting from ``mean = x0, var = 0, W = W2 = 1`` at a feature's first value.
 ``var / (1 - W2 / W**2)``, which equals ``.var(bias=False)`` (for two values: the sample
 variance); without it a young baseline would have far too small a spread.
 
-The raw score of a window is the largest absolute z-score among its features, so it reads in
-"standard deviations" and always matches the first contributor of the window.
+The raw score of a window is the largest absolute *predictive* deviation among its features:
+each z-score is widened for the uncertainty of the mean and converted to the normal scale with
+Student's t at the baseline's effective degrees of freedom (see :meth:`AdaptiveBaseline.compare`).
+A mature baseline's raw score is close to its largest ``|z|``; a baseline of six windows gives
+even a huge ``z`` a modest raw score. Without that, the chance extremes of a service's first few
+windows would sit at the top of its calibration history for ``calibration_history`` windows and
+mask real incidents.
 
 Examples
 --------
@@ -37,10 +42,11 @@ Examples
 >>> baseline = AdaptiveBaseline(half_life=24.0)
 >>> for latency in [200.0, 204.0, 198.0, 202.0, 199.0, 201.0]:
 ...     baseline.learn_one({"latency_ms": latency})
->>> round(baseline.score_one({"latency_ms": 201.0}), 2)
-0.55
->>> round(baseline.score_one({"latency_ms": 260.0}), 1)
-36.6
+>>> expected, z = baseline.deviation("latency_ms", 260.0)
+>>> round(expected, 2), round(z, 1)
+(200.65, 27.8)
+>>> round(baseline.score_one({"latency_ms": 260.0}), 2), round(baseline.score_one({"latency_ms": 201.0}), 2)
+(4.71, 0.14)
 """
 
 from __future__ import annotations

@@ -39,13 +39,13 @@ Examples
 >>> for x in [0.5, 0.45, 0.43, 0.44, 0.445, 0.45, 0.0]:
 ...     hst.learn_one({"x": x})
 ...     print(f"{x:.3f} {hst.score_one({'x': x}):.3f}")
-0.500 0.124
-0.450 0.062
-0.430 0.062
-0.440 0.062
-0.445 0.062
+0.500 0.231
+0.450 0.116
+0.430 0.116
+0.440 0.116
+0.445 0.116
 0.450 0.000
-0.000 0.800
+0.000 0.667
 """
 
 from __future__ import annotations
@@ -136,7 +136,7 @@ class HalfSpaceTrees:
         self.counter = 0
         self._first_window = True
         self._rows = np.arange(n_trees, dtype=np.intp)[:, None]
-        self._weights = 2.0 ** np.arange(height + 1)
+        self._weights = 2 ** np.arange(height + 1, dtype=np.int64)
 
     # ------------------------------------------------------------------ construction
     @property
@@ -247,15 +247,21 @@ class HalfSpaceTrees:
         return np.array(out, dtype=np.intp).reshape(self.n_trees, height + 1)
 
     def _score_path(self, path: np.ndarray) -> float:
+        """Normalised score of paths of shape ``(..., n_trees, height + 1)``, summed per row."""
         if self._first_window:
             return 0.0
-        r = self._r_mass.ravel()[path].astype(np.float64)
-        # Masses never grow along a path (a child sees a subset of its parent's observations),
-        # so "up to and including the first node under the size limit" is "the root, plus every
-        # node whose parent is at or above the limit".
-        weighted = r * self._weights
-        score = weighted[:, 0].sum() + weighted[:, 1:][r[:, :-1] >= self.size_limit].sum()
-        return 1.0 - float(score) / self.max_score
+        return float(self._score_paths(path[None])[0])
+
+    def _score_paths(self, paths: np.ndarray) -> np.ndarray:
+        # Integer arithmetic: the mass sum is exact, so one row scored alone or in a batch gives
+        # bit-identical results.
+        r = self._r_mass.ravel()[paths].astype(np.int64)
+        # A node counts if every node above it on the path has at least ``size_limit`` mass: the
+        # walk stops *after* adding the first node under the limit.
+        keep = np.ones(r.shape, dtype=bool)
+        np.logical_and.accumulate(r[..., :-1] >= self.size_limit, axis=-1, out=keep[..., 1:])
+        total = (r * self._weights * keep).sum(axis=(-2, -1))
+        return 1.0 - total / self.max_score
 
     def _learn_path(self, path: np.ndarray) -> None:
         self._l_mass.ravel()[path] += 1  # a view: the mass arrays are C-contiguous
@@ -280,6 +286,52 @@ class HalfSpaceTrees:
         score = self._score_path(path)
         self._learn_path(path)
         return score
+
+    def score_learn_batch(self, rows: np.ndarray) -> np.ndarray:
+        """Score-then-learn every row of ``rows`` in order; identical to a loop over
+        :meth:`score_learn_vector`, but vectorised.
+
+        Within one mass window the reference masses do not change, so every row up to the next
+        window swap can be walked and scored at once. Used to replay long recordings quickly.
+
+        Parameters
+        ----------
+        rows
+            Array of shape ``(n, len(features))`` in the order of :attr:`features`.
+        """
+        if self.features is None:
+            raise SettingsError("the trees are not built yet; call build() first")
+        rows = np.asarray(rows, dtype=np.float64)
+        if rows.ndim != 2 or rows.shape[1] != len(self.features):
+            raise SettingsError(f"rows must have shape (n, {len(self.features)})")
+        out = np.empty(rows.shape[0])
+        n_internal = 2 ** self.height - 1
+        tree = np.arange(self.n_trees, dtype=np.intp)
+        feature = self._feature.astype(np.intp)
+        pos = 0
+        while pos < rows.shape[0]:
+            chunk = rows[pos : pos + self.window_size - self.counter]
+            b = chunk.shape[0]
+            node = np.zeros((b, self.n_trees), dtype=np.intp)
+            paths = np.empty((b, self.n_trees, self.height + 1), dtype=np.intp)
+            paths[..., 0] = 0
+            row = np.arange(b, dtype=np.intp)[:, None]
+            for d in range(1, self.height + 1):
+                f = feature[tree, node]
+                go_right = chunk[row, f] >= self._threshold[tree, node]
+                node = 2 * node + 1 + go_right
+                paths[..., d] = node
+            paths += (tree * self.n_nodes)[:, None]
+            out[pos : pos + b] = 0.0 if self._first_window else self._score_paths(paths)
+            np.add.at(self._l_mass.ravel(), paths.ravel(), 1)
+            self.counter += b
+            if self.counter == self.window_size:
+                self._r_mass[...] = self._l_mass
+                self._l_mass[...] = 0
+                self._first_window = False
+                self.counter = 0
+            pos += b
+        return out
 
     # ------------------------------------------------------------------ Scorer protocol
     def learn_one(self, x: Mapping[str, float]) -> None:

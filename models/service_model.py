@@ -3,11 +3,12 @@
 Kinds (``ModelSettings.kind``):
 
 ``"adaptive_baseline"``
-    raw score = largest ``|z|`` of the window's features against an exponentially weighted
-    baseline (:class:`~models.baseline.AdaptiveBaseline`).
+    raw score = the largest predictive deviation of the window's features from an exponentially
+    weighted baseline, on the normal scale (:class:`~models.baseline.AdaptiveBaseline`; close to
+    the largest ``|z|`` once the baseline has a few dozen windows).
 ``"half_space_trees"``
-    every feature is squashed into [0, 1] as ``0.5 + 0.5 * tanh(z / 3)``, with ``z`` taken
-    against a *slow* baseline (half-life ``4 * half_life``), so a level that drifts stays inside
+    every feature is squashed into [0, 1] as ``0.5 + 0.5 * tanh(z / 3)``, with ``z`` the
+    predictive deviation from a *slow* baseline (half-life ``4 * half_life``), so a level that drifts stays inside
     the trees' fixed range while a jump lands near 0 or 1; raw score = the half-space-trees score
     (:class:`~models.hst.HalfSpaceTrees`). The trees' feature set is the first window's; a feature
     first seen later only reaches the baseline and the contributors, and a tree feature missing
@@ -19,7 +20,8 @@ Kinds (``ModelSettings.kind``):
     (see :meth:`~models.calibration.EmpiricalCalibrator.score`): with the plain fraction, every
     "new maximum" of the short early histories would be exactly 1.0, those 1.0s would stay in the
     outer history for ``calibration_history`` windows, and a later, genuine maximum could never
-    rank above them.
+    rank above them (on synthetic streams this hid most incidents of a model's first
+    ``calibration_history`` windows).
 
 Every kind keeps the baseline for the contributors: each feature's observed value, the
 baseline mean *before* this window and the signed z-score, most deviating first.
@@ -48,7 +50,7 @@ Examples
 (True, 1.0)
 >>> top = result.contributors[0]
 >>> top.feature, top.observed, round(top.expected, 1), round(top.deviation, 1)
-('latency_p95_ms.mean', 450.0, 201.7, 161.2)
+('latency_p95_ms.mean', 450.0, 202.1, 173.6)
 """
 
 from __future__ import annotations

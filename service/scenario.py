@@ -54,6 +54,8 @@ from dataclasses import dataclass, field
 import numpy as np
 import orjson
 
+from service.errors import TidewatchError
+
 __all__ = [
     "INCIDENT_KINDS",
     "INCIDENT_METRICS",
@@ -68,8 +70,8 @@ __all__ = [
 ]
 
 
-class ScenarioError(ValueError):
-    """A scenario cannot be built or rendered with the given parameters."""
+class ScenarioError(TidewatchError, ValueError):
+    """A scenario cannot be built or rendered with the given parameters (a ``ValueError`` too)."""
 
 
 ORGANISATION = "Ostmere Sound Ferry Cooperative"

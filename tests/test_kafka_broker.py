@@ -244,12 +244,13 @@ def test_compacted_topic(kafka_bootstrap: str, kafka_topic: TopicFactory,
     producer = Producer({"bootstrap.servers": kafka_bootstrap})
     keyed = [(b"svc-a", b"1"), (b"svc-b", b"1"), (b"svc-a", b"2"), (b"svc-b", None)]
     assert _produce(producer, topic, keyed) == [None] * len(keyed)
-    # The broker rejects records without a key on a compacted topic (Kafka's
-    # record validation for cleanup.policy=compact; from memory of the broker's
-    # behaviour): this shows the topic's policy is really in force.
-    producer_no_retry = Producer({"bootstrap.servers": kafka_bootstrap, "message.timeout.ms": 10000})
-    [keyless_error] = _produce(producer_no_retry, topic, [(None, b"no key")])
+    # The broker rejects records without a key on a compacted topic with
+    # INVALID_RECORD ("Compacted topic cannot accept message without key", Kafka's
+    # record validation for cleanup.policy=compact, seen in this broker's log):
+    # this shows the topic's policy is really in force.
+    [keyless_error] = _produce(producer, topic, [(None, b"no key")])
     assert keyless_error is not None
+    assert keyless_error.code() == KafkaError.INVALID_RECORD, keyless_error
 
     got = _read_topic(kafka_bootstrap, topic)
     # The cleaner has not run yet (it waits for closed segments), so all keyed
