@@ -280,10 +280,22 @@ class KafkaRunner:
                 self._call(lambda: self.producer.send_offsets_to_transaction(offsets, meta, _CALL_TIMEOUT))
             self._call(lambda: self.producer.commit_transaction(_CALL_TIMEOUT))
             self.in_txn = False
+            self._record_lag()
             self.pending_offsets.clear()
         except _AbortNeeded as exc:
             log.warning("transaction aborted; rewinding to the committed offsets", extra={"event": "txn_abort", "error": str(exc)})
             self._abort_and_rewind()
+
+    def _record_lag(self) -> None:
+        # Cached watermarks come with every fetch response: no extra request per commit.
+        lag = self.stats.consumer_lag
+        for (topic, partition), offset in self.pending_offsets.items():
+            try:
+                _low, high = self.consumer.get_watermark_offsets(TopicPartition(topic, partition), cached=True)
+            except KafkaException:
+                continue
+            if high >= 0:
+                lag[(topic, partition)] = max(0, high - offset)
 
     def _abort_and_rewind(self) -> None:
         if self.in_txn:
@@ -311,6 +323,7 @@ class KafkaRunner:
 
     def _drop(self, topic: str, partition: int) -> None:
         self.engine.drop_source(self._source_id(topic, partition))
+        self.stats.consumer_lag.pop((topic, partition), None)
         self.stats.high_marks.pop(self._source_id(topic, partition), None)
 
     def _restore(self, parts: list[tuple[str, int]]) -> None:

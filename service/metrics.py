@@ -20,6 +20,7 @@ Metric names (all prefixed ``tidewatch_``; counters end in ``_total``, units in 
 ``state_save_duration_seconds``           histogram of checkpoint durations
 ``window_close_delay_seconds``            histogram: wall clock from a window's end to its score
 ``source_high_mark_seconds{source}``      newest event time seen per source (epoch seconds)
+``consumer_lag_messages{topic,partition}`` Kafka: messages between the committed position and the log end
 ``service_score{service}``                latest calibrated score per service
 ``service_anomalous{service}``            1 if the latest window was flagged
 ``service_series_dropped``                services left out of the per-service series by the limit
@@ -107,6 +108,13 @@ class RuntimeCollector(Collector):
         m = GaugeMetricFamily(P + "source_high_mark_seconds", "Newest event time seen per source.", labels=["source"])
         for source, mark in sorted(s.high_marks.copy().items()):
             m.add_metric([source], mark)
+        yield m
+        m = GaugeMetricFamily(
+            P + "consumer_lag_messages", "Messages between the committed position and the log end, per input partition.",
+            labels=["topic", "partition"],
+        )
+        for (topic, partition), lag in sorted(s.consumer_lag.copy().items()):
+            m.add_metric([topic, str(partition)], lag)
         yield m
         latest = s.latest.copy()
         items = latest.items()

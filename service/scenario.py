@@ -48,8 +48,9 @@ import math
 import os
 import re
 import zlib
-from collections.abc import Iterator
+from collections.abc import Iterator, Mapping
 from dataclasses import dataclass, field
+from types import MappingProxyType
 
 import numpy as np
 import orjson
@@ -92,14 +93,14 @@ INCIDENT_KINDS = (
 )
 
 #: Which metrics an incident of each kind may be attached to.
-INCIDENT_METRICS: dict[str, tuple[str, ...]] = {
+INCIDENT_METRICS: Mapping[str, tuple[str, ...]] = MappingProxyType({
     "latency_spike": ("latency_p95_ms",),
     "error_burst": ("errors",),
     "traffic_drop": ("requests",),
     "memory_leak": ("memory_mb",),
     "level_shift": ("latency_p95_ms", "cpu_util", "memory_mb"),
     "stuck_metric": ("cpu_util", "memory_mb", "latency_p95_ms", "queue_depth"),
-}
+})
 
 #: The three accepted ``ts`` forms; each service uses one of them.
 TS_FORMS = ("rfc3339", "epoch_s", "epoch_ms")
@@ -269,7 +270,7 @@ def _profile(seed: int, i: int) -> _Profile:
         peaks=peaks,
         floor=min(floor, 0.9),
         weekend=t.weekend * float(rng.uniform(0.95, 1.05)),
-        weekend_delay_h=float(rng.uniform(0.5, 1.5)),
+        weekend_delay_h=float(rng.uniform(0.5, 1.5)),  # weekend peaks come a little later
         peak_rpm=rpm,
         latency_ms=t.latency_ms * float(rng.lognormal(0.0, 0.15)),
         latency_load=float(rng.uniform(0.3, 0.8)),
@@ -341,7 +342,7 @@ class _Context:
     outage_mask: np.ndarray  # bool per grid row: inside a scrape outage
     shape_top: float  # normaliser of the diurnal shape
     effects: list[_Effect]
-    frozen: dict[int, float] = field(default_factory=dict)  # stuck incident id -> frozen value
+    frozen: dict[int, float] = field(default_factory=dict)  # index in effects -> frozen value
     labels: dict[str, str] = field(default_factory=dict)
 
 
@@ -663,9 +664,11 @@ _BAD_KINDS = 6
 class Scenario:
     """A generated demo scenario: services, incidents and a lazy stream of native messages.
 
-    Build one with :func:`generate`. The messages are rendered on demand from ``seed``; the
-    incidents are applied while rendering, so ``dataclasses.replace(scn, incidents=())`` gives the
-    same data without any incident.
+    Build one with :func:`generate`. The messages are rendered on demand from ``seed`` (the one
+    field beyond the description of the scenario itself); the incidents are applied while
+    rendering, so ``dataclasses.replace(scn, incidents=())`` gives the same data without any
+    incident. Construction validates the incidents (kind, service, metric, inside the period,
+    one at a time per service) and raises :class:`ScenarioError` otherwise.
 
     Examples
     --------
@@ -686,6 +689,8 @@ class Scenario:
     seed: int = 7
 
     def __post_init__(self) -> None:
+        if isinstance(self.seed, bool) or not isinstance(self.seed, (int, np.integer)) or self.seed < 0:
+            raise ScenarioError(f"seed must be a non-negative integer, got {self.seed!r}")
         if not (self.step_s >= _MIN_STEP_S and self.step_s <= _MAX_STEP_S):
             raise ScenarioError(f"step_s must be in [{_MIN_STEP_S}, {_MAX_STEP_S}] seconds, got {self.step_s}")
         if not self.end > self.start + self.step_s:

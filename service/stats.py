@@ -60,6 +60,7 @@ class RuntimeStats:
         # service -> (score, anomalous, window_end); read by the metrics collector
         self.latest: dict[str, tuple[float, bool, float]] = {}
         self.high_marks: dict[str, float] = {}  # source -> high mark (event seconds)
+        self.consumer_lag: dict[tuple[str, int], int] = {}  # (topic, partition) -> messages behind the log end
         self.started = time.time()
         self.heartbeat = time.monotonic()
         self.ready = False

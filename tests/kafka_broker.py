@@ -8,8 +8,9 @@ Where the broker comes from, first match wins:
 2. A Docker engine that answers ``docker info`` -- ``deploy/compose.yaml``'s
    ``kafka`` service, through pytest-docker.
 3. Otherwise the local single-node broker of ``deploy/local-kafka/kafka.sh``,
-   fetched if needed, started for the session and stopped at its end (only when
-   this session started it).
+   fetched if needed, started for the session and stopped at its end when a
+   test session started it and no other session on the same cache still uses
+   it; a broker started by hand with ``kafka.sh start`` is used and left running.
 
 ``TIDEWATCH_TEST_BROKER=local`` or ``=docker`` forces path 3 or 2. Kafka tests
 never skip: when no broker can be had the fixture fails, with the broker log
@@ -23,6 +24,8 @@ broker, keeping its data, for tests of a broker restart during a run.
 
 from __future__ import annotations
 
+import contextlib
+import fcntl
 import os
 import re
 import shutil
@@ -105,7 +108,8 @@ class BrokerHandle:
         ``"env"`` (``TIDEWATCH_TEST_BOOTSTRAP``), ``"docker"`` (compose) or
         ``"local"`` (``deploy/local-kafka/kafka.sh``).
     started_here
-        True when this session started the broker and so stops it at the end.
+        True when this session started the broker. It is stopped when the last
+        test session using it ends (never when a developer started it by hand).
     env
         Environment passed to ``kafka.sh`` (local origin only).
 
@@ -147,11 +151,15 @@ class BrokerHandle:
             When the broker does not come back.
         """
         if not self.restartable:
+            how = (
+                "unset TIDEWATCH_TEST_BOOTSTRAP"
+                if self.origin == "env"
+                else "set TIDEWATCH_TEST_BROKER=local"
+            )
             raise BrokerRestartUnavailable(
                 "restart is only available for the local broker "
                 f"(deploy/local-kafka/kafka.sh); this session uses the {self.origin} "
-                f"broker at {self.bootstrap}. Unset TIDEWATCH_TEST_BOOTSTRAP or set "
-                "TIDEWATCH_TEST_BROKER=local to run restart tests."
+                f"broker at {self.bootstrap}: {how} to run restart tests."
             )
         _run_script("restart", self.env)
 
@@ -276,27 +284,93 @@ def _local_log_tail(env: Mapping[str, str]) -> str:
     return f"--- last {len(lines)} lines of {path} ---\n" + "".join(lines)
 
 
+def _process_start_time(pid: int) -> str | None:
+    """Start time of ``pid`` in clock ticks since boot (None if it is gone).
+
+    Paired with the pid it names one process for good: a pid reused later by
+    another process has a different start time.
+    """
+    try:
+        with open(f"/proc/{pid}/stat", encoding="ascii", errors="replace") as fh:
+            fields = fh.read().rsplit(")", 1)[1].split()
+    except (OSError, IndexError):
+        return None
+    # Fields after the command name start at field 3 (state); starttime is field 22.
+    return fields[19] if len(fields) > 19 and fields[0] != "Z" else None
+
+
+@contextlib.contextmanager
+def _locked(path: Path) -> Iterator[None]:
+    path.parent.mkdir(parents=True, exist_ok=True)
+    with path.open("a") as fh:
+        fcntl.flock(fh, fcntl.LOCK_EX)
+        try:
+            yield
+        finally:
+            fcntl.flock(fh, fcntl.LOCK_UN)
+
+
 @dataclass
 class _LocalBroker:
+    """The local broker, shared by the test sessions that use one cache at once.
+
+    Each session holds a lease file (``<cache>/leases/<pid>-<start time>``) while
+    it uses the broker. A broker that a test session started is stopped by the
+    last session to leave, so two concurrent pytest runs do not pull the broker
+    from under each other; a broker a developer started by hand (no
+    ``started-by-tests`` marker) is left running.
+    """
+
     env: dict[str, str]
     handle: BrokerHandle | None = None
+    lease: Path | None = None
+
+    @property
+    def home(self) -> Path:
+        return _kafka_home(self.env)
+
+    def _live_leases(self) -> list[Path]:
+        live = []
+        for path in (self.home / "leases").glob("*-*"):
+            pid, _, started = path.name.partition("-")
+            if pid.isdigit() and _process_start_time(int(pid)) == started:
+                live.append(path)
+            else:
+                path.unlink(missing_ok=True)  # left by a session that died
+        return live
 
     def __enter__(self) -> BrokerHandle:
         bootstrap = f"127.0.0.1:{_local_port(self.env)}"
-        # Reuse a broker a developer already started from this cache, and leave it
-        # running afterwards: it is theirs.
-        already = _run_script("status", self.env).returncode == 0
-        if not already:
-            _run_script("start", self.env)
+        leases = self.home / "leases"
+        leases.mkdir(parents=True, exist_ok=True)
+        marker = self.home / "started-by-tests"
+        with _locked(self.home / ".lease-lock"):
+            self._live_leases()
+            self.lease = leases / f"{os.getpid()}-{_process_start_time(os.getpid())}"
+            self.lease.touch()
+            try:
+                already = _run_script("status", self.env).returncode == 0
+                if not already:
+                    _run_script("start", self.env)
+                    marker.touch()
+            except BaseException:
+                self.lease.unlink(missing_ok=True)
+                raise
         self.handle = BrokerHandle(
             bootstrap=bootstrap, origin="local", started_here=not already, env=self.env
         )
         return self.handle
 
     def __exit__(self, *exc: object) -> None:
-        if self.handle is None or not self.handle.started_here:
+        if self.lease is None:
             return
-        proc = _run_script("stop", self.env)
+        marker = self.home / "started-by-tests"
+        with _locked(self.home / ".lease-lock"):
+            self.lease.unlink(missing_ok=True)
+            if self._live_leases() or not marker.exists():
+                return
+            proc = _run_script("stop", self.env)
+            marker.unlink(missing_ok=True)
         if proc.returncode != 0:
             # Never turn a green session red over cleanup, but say so.
             sys.stderr.write(f"kafka_broker: stopping the local broker failed:\n{proc.stderr}\n")
@@ -410,9 +484,13 @@ def kafka_bootstrap(kafka_broker: BrokerHandle) -> str:
 
 
 @pytest.fixture(scope="session")
-def kafka_admin(kafka_bootstrap: str) -> AdminClient:
+def kafka_admin(kafka_bootstrap: str) -> Iterator[AdminClient]:
     """An ``AdminClient`` on the session's broker (it reconnects after a restart)."""
-    return AdminClient({"bootstrap.servers": kafka_bootstrap})
+    admin = AdminClient({"bootstrap.servers": kafka_bootstrap})
+    yield admin
+    # Drop the last reference before the broker stops, so the client's threads
+    # end now instead of logging refused reconnects until the interpreter exits.
+    del admin
 
 
 def _wait_topic_ready(admin: AdminClient, name: str, partitions: int) -> None:

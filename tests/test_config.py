@@ -91,3 +91,23 @@ def test_check_config_exits_2_on_a_bad_file(tmp_path, capsys):
     p.write_text('[defaults]\nwarm_up = -1\n')
     assert main(["check-config", str(p)]) == 2
     assert "defaults.warm_up" in capsys.readouterr().err
+
+
+def test_kafka_settings_are_overridable_by_environment_variables():
+    env = {
+        "TIDEWATCH_KAFKA_BOOTSTRAP_SERVERS": "broker-a:9092,broker-b:9092",
+        "TIDEWATCH_KAFKA_INPUT_TOPICS": "fleet-metrics, edge-metrics",
+        "TIDEWATCH_KAFKA_INPUT_KEYED": "false",
+        "TIDEWATCH_KAFKA_PROPERTY_SECURITY_PROTOCOL": "SASL_SSL",
+    }
+    cfg = parse_config('[kafka]\ngroup_id = "tw"\n[kafka.properties]\n"client.id" = "x"\n', "k.toml", env)
+    k = cfg.kafka
+    assert k.bootstrap_servers == "broker-a:9092,broker-b:9092"
+    assert k.input_topics == ("fleet-metrics", "edge-metrics")
+    assert k.input_keyed is False and k.group_id == "tw"
+    assert k.properties == {"client.id": "x", "security.protocol": "SASL_SSL"}
+
+
+def test_no_kafka_table_means_embedded_only():
+    assert parse_config("").kafka is None
+    assert parse_config("", environ={}).kafka is None

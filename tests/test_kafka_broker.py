@@ -304,8 +304,10 @@ def test_restart_keeps_records_and_a_live_producer_carries_on(kafka_bootstrap: s
 def test_restart_is_refused_off_the_local_broker(origin: str) -> None:
     handle = BrokerHandle(bootstrap="127.0.0.1:19092", origin=origin)  # type: ignore[arg-type]
     assert not handle.restartable
-    with pytest.raises(BrokerRestartUnavailable, match="only available for the local broker"):
+    hint = "unset TIDEWATCH_TEST_BOOTSTRAP" if origin == "env" else "TIDEWATCH_TEST_BROKER=local"
+    with pytest.raises(BrokerRestartUnavailable, match="only available for the local broker") as err:
         handle.restart()
+    assert hint in str(err.value)
 
 
 def test_broker_answers_is_false_when_nothing_listens() -> None:

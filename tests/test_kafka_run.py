@@ -35,10 +35,10 @@ pytestmark = pytest.mark.kafka
 
 @pytest.fixture(scope="module")
 def scenario_lines(tmp_path_factory) -> tuple[list[bytes], float, Path]:
-    """Two days of the demo scenario (a dozen services, one scrape a minute each)."""
+    """Three days of the demo scenario for six services, one scrape a minute each."""
     d = tmp_path_factory.mktemp("scenario")
     path = d / "metrics.jsonl"
-    sc = generate(seed=7, days=2.0)
+    sc = generate(seed=7, days=3.0, services=6)
     sc.write_jsonl(path)
     return path.read_bytes().splitlines(), sc.end, path
 

@@ -273,15 +273,23 @@ format_storage() {
 
 # --- readiness probe ---------------------------------------------------------
 
+cluster_id() { sed -n 's/^cluster\.id=//p' "$DATA/meta.properties" 2>/dev/null; }
+
+# True when something accepts TCP connections on 127.0.0.1:$1.
+port_in_use() { (exec 3<>"/dev/tcp/$HOST/$1") 2>/dev/null; }
+
 # Poll (never a fixed sleep) until the broker answers a metadata request with a
-# broker and a controller, within DEADLINE seconds. Exit codes: 0 ready,
-# 1 the process died, 2 deadline passed, 3 confluent_kafka is missing.
+# broker, a controller and OUR cluster id, within DEADLINE seconds. The id check
+# keeps another broker that happens to own the port from passing for ours.
+# Exit codes: 0 ready, 1 the process died, 2 deadline passed, 3 confluent_kafka
+# is missing, 4 a different cluster answers on the port.
 probe() {
     local pid="$1" deadline="$2"
-    "$(pick_python)" - "$HOST" "$PORT" "$pid" "$deadline" <<'PY'
+    "$(pick_python)" - "$HOST" "$PORT" "$pid" "$deadline" "$(cluster_id)" <<'PY'
 import socket, sys, time
 
 host, port, pid, budget = sys.argv[1], int(sys.argv[2]), int(sys.argv[3]), float(sys.argv[4])
+expected_cluster = sys.argv[5]
 try:
     from confluent_kafka import KafkaException
     from confluent_kafka.admin import AdminClient
@@ -334,6 +342,10 @@ while True:
         time.sleep(0.05)
         continue
     if md.brokers and md.controller_id >= 0:
+        if expected_cluster and md.cluster_id != expected_cluster:
+            print(f"kafka.sh: {host}:{port} answers as cluster {md.cluster_id}, "
+                  f"not this broker's {expected_cluster}", file=sys.stderr)
+            sys.exit(4)
         sys.exit(0)
     time.sleep(0.05)
 PY
@@ -351,6 +363,12 @@ cmd_start() {
         return 0
     fi
     rm -f "$PID_FILE"
+    local p
+    for p in "$PORT" "$CONTROLLER_PORT"; do
+        if port_in_use "$p"; then
+            die "something already listens on $HOST:$p (another broker? 'ss -ltnp' shows who); set TIDEWATCH_KAFKA_PORT to use other ports"
+        fi
+    done
     libs_current || cmd_fetch
     command -v "$JAVA" >/dev/null || die "java not found (set JAVA_HOME or put Java 17+ on PATH)"
     local t0=$EPOCHREALTIME
@@ -383,6 +401,7 @@ cmd_start() {
         1) why="the broker process exited" ;;
         2) why="it did not answer within ${START_TIMEOUT}s" ;;
         3) why="the readiness probe could not run" ;;
+        4) why="another Kafka cluster answers on $HOST:$PORT" ;;
         *) why="the readiness probe failed (exit $rc)" ;;
     esac
     {

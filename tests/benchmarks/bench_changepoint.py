@@ -52,7 +52,7 @@ from service.eval_changepoint import change_point_score, onsets  # noqa: E402
 
 __all__ = ["TCPD_ANNOTATIONS", "TCPD_LENGTHS", "load_series", "check_annotations"]
 
-# TCPD annotations.json (repository alan-turing-institute/TCPD, commit 9c63a64), the four
+# TCPD annotations.json (the dataset's public repository, commit 9c63a64), the four
 # series river ships; annotator id -> 0-based change-point indices.
 TCPD_ANNOTATIONS: dict[str, dict[str, list[int]]] = {
     "occupancy": {
