@@ -59,10 +59,13 @@ def cmd_run(args: argparse.Namespace) -> int:
     config = load_config(args.config)
     stop = threading.Event()
     _install_stop_handlers(stop)
+    from service.reload import ConfigReloader
+
+    reloader = ConfigReloader(args.config).install()
     if args.input is None and config.kafka is not None:
         from service.kafka_bus import KafkaRunner
 
-        KafkaRunner(config, stop, state_key=_state_key(), http_listen=args.listen).run()
+        KafkaRunner(config, stop, state_key=_state_key(), http_listen=args.listen, reloader=reloader).run()
         return EXIT_OK
 
     from service.embedded import RunOptions, run_embedded
@@ -75,6 +78,7 @@ def cmd_run(args: argparse.Namespace) -> int:
         follow=args.follow,
         http_listen=args.listen,
         state_key=_state_key(),
+        reloader=reloader,
     )
     summary = run_embedded(config, opts, stop)
     log.info(summary.describe(), extra={"event": "run_finished", "windows": summary.windows, "flagged": summary.flagged})

@@ -190,6 +190,7 @@ class RunOptions:
     follow: bool = False
     http_listen: str | None = None  # None: take the config's
     state_key: bytes | None = None
+    reloader: object | None = None  # a service.reload.ConfigReloader, polled between batches
 
 
 def run_embedded(config: Config, opts: RunOptions, stop: threading.Event) -> RunSummary:
@@ -283,6 +284,8 @@ def run_embedded(config: Config, opts: RunOptions, stop: threading.Event) -> Run
 
     def on_batch() -> None:
         nonlocal next_at
+        if opts.reloader is not None:
+            opts.reloader.poll(engine)
         if src.high_mark > float("-inf"):
             stats.high_marks[SOURCE_ID] = src.high_mark
         if time.monotonic() >= next_at:

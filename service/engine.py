@@ -75,6 +75,11 @@ class Engine:
             src = self.sources[source_id] = SourceWindows()
         return src
 
+    def reconfigure(self, config: Config) -> tuple[int, int]:
+        """Apply a reloaded config from the next window on; see :meth:`ModelRegistry.reconfigure`."""
+        self.config = config
+        return self.registry.reconfigure(config)
+
     def drop_source(self, source_id: str) -> list[str]:
         """Forget a source and every service it owns (partition revoked or lost); return those services."""
         src = self.sources.pop(source_id, None)

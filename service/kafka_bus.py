@@ -118,7 +118,7 @@ class KafkaRunner:
     """
 
     def __init__(self, config: Config, stop: threading.Event, *, state_key: bytes | None = None,
-                 stats: RuntimeStats | None = None, http_listen: str | None = None) -> None:
+                 stats: RuntimeStats | None = None, http_listen: str | None = None, reloader=None) -> None:
         if config.kafka is None:
             raise TidewatchError("the config has no [kafka] table")
         self.config = config
@@ -138,6 +138,7 @@ class KafkaRunner:
         self.pending_offsets: dict[tuple[str, int], int] = {}
         self.assigned: set[tuple[str, int]] = set()
         self._abort_pending = False
+        self.reloader = reloader
 
     # --- set-up ----------------------------------------------------------------------
     def _ensure_topics(self) -> None:
@@ -502,6 +503,8 @@ class KafkaRunner:
             while not self.stop.is_set():
                 msgs = self.consumer.consume(num_messages=k.batch_size, timeout=0.1)
                 self.stats.heartbeat = time.monotonic()
+                if self.reloader is not None:
+                    self.reloader.poll(self.engine)
                 if self._abort_pending:
                     self._abort_pending = False
                     self._abort_and_rewind()

@@ -36,6 +36,23 @@ class ModelRegistry:
             self.stats.models_created += 1
         return m
 
+    def reconfigure(self, config: Config) -> tuple[int, int]:
+        """Take a new config: later windows use the new rules; a model whose kind or parameters
+        changed is rebuilt (fresh, it learns again), every other model is kept. Returns (kept, rebuilt)."""
+        self.config = config
+        self._settings.clear()
+        kept = rebuilt = 0
+        for service, model in list(self.models.items()):
+            wanted = self.settings(service).model
+            if model.settings == wanted:
+                kept += 1
+                continue
+            self.models[service] = build_model(service, wanted)
+            self.dirty.add(service)
+            self.stats.models_created += 1
+            rebuilt += 1
+        return kept, rebuilt
+
     def put(self, service: str, model: ServiceModel) -> None:
         """Install a restored model (its settings are kept as saved)."""
         self.models[service] = model
