@@ -104,7 +104,7 @@ class HalfSpaceTrees:
 
     __slots__ = ("n_trees", "height", "window_size", "limits", "seed", "split",
                  "features", "_index", "_low", "_high", "_feature", "_threshold",
-                 "_l_mass", "_r_mass", "counter", "_first_window", "_rows", "_weights")
+                 "_l_mass", "_r_mass", "counter", "_first_window", "_weights")
 
     def __init__(self, n_trees: int = 10, height: int = 8, window_size: int = 250,
                  limits: Mapping[str, tuple[float, float]] | None = None, seed: int = 0,
@@ -121,7 +121,10 @@ class HalfSpaceTrees:
         self.seed, self.split = seed, split
         self.limits: dict[str, tuple[float, float]] = {}
         for feature, pair in (limits or {}).items():
-            low, high = (float(v) for v in pair)
+            try:
+                low, high = (float(v) for v in pair)
+            except (TypeError, ValueError) as exc:
+                raise SettingsError(f"limits of {feature!r} must be a (low, high) pair") from exc
             if not (math.isfinite(low) and math.isfinite(high) and low < high):
                 raise SettingsError(f"limits of {feature!r} must be finite with low < high")
             self.limits[str(feature)] = (low, high)
@@ -135,7 +138,6 @@ class HalfSpaceTrees:
         self._r_mass = np.zeros((0, 0), dtype=mass)
         self.counter = 0
         self._first_window = True
-        self._rows = np.arange(n_trees, dtype=np.intp)[:, None]
         self._weights = 2 ** np.arange(height + 1, dtype=np.int64)
 
     # ------------------------------------------------------------------ construction
@@ -235,6 +237,8 @@ class HalfSpaceTrees:
         # One vectorised comparison at every internal node of every tree, then a plain-Python
         # walk over the resulting bytes: for trees this small that beats ``height`` rounds of
         # numpy gathers, which pay a fixed overhead per call.
+        if v.shape != self._low.shape:
+            raise SettingsError(f"expected a vector of {self._low.size} tree features, got shape {v.shape}")
         go_right = (v[self._feature] >= self._threshold).tobytes()
         n_internal, n_nodes, height = 2 ** self.height - 1, self.n_nodes, self.height
         out: list[int] = []

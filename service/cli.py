@@ -113,6 +113,15 @@ def cmd_check_config(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def cmd_config_schema(args: argparse.Namespace) -> int:
+    import json
+
+    from service.config import config_json_schema
+
+    print(json.dumps(config_json_schema(), indent=2, sort_keys=True))
+    return EXIT_OK
+
+
 def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(
         prog="tidewatch",
@@ -156,6 +165,9 @@ def build_parser() -> argparse.ArgumentParser:
     c.add_argument("file", metavar="FILE")
     c.add_argument("services", nargs="*", metavar="SERVICE")
     c.set_defaults(func=cmd_check_config)
+
+    s = sub.add_parser("config-schema", help="print the JSON Schema of the config file", epilog=EPILOG)
+    s.set_defaults(func=cmd_config_schema)
     return p
 
 

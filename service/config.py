@@ -28,7 +28,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Annotated, Any, Literal
 
-from pydantic import BaseModel, BeforeValidator, ConfigDict, Field, ValidationError, field_validator
+from pydantic import BaseModel, BeforeValidator, ConfigDict, Field, ValidationError, WithJsonSchema, field_validator
 
 from models import MODEL_KINDS, ModelSettings
 from service.errors import ConfigError
@@ -47,6 +47,7 @@ __all__ = [
     "ServiceSettings",
     "FeatureSpec",
     "load_config",
+    "config_json_schema",
     "parse_config",
     "DEFAULT_FEATURES",
 ]
@@ -62,7 +63,13 @@ def _duration(value: Any) -> float:
         raise ValueError(str(exc)) from None
 
 
-Duration = Annotated[float, BeforeValidator(_duration)]
+_DURATION_SCHEMA = {
+    "anyOf": [
+        {"type": "string", "pattern": r"^\s*\d+(\.\d+)?\s*(ms|s|m|h|d)\s*$", "examples": ["30s", "5m", "1h"]},
+        {"type": "number", "minimum": 0, "description": "seconds"},
+    ]
+}
+Duration = Annotated[float, BeforeValidator(_duration), WithJsonSchema(_DURATION_SCHEMA)]
 
 
 class _Frozen(BaseModel):
@@ -339,6 +346,14 @@ def parse_config(text: str, source: str = "<config>", environ: dict[str, str] | 
     except ValueError as exc:
         raise ConfigError(f"{source}: {exc}") from exc
     return config
+
+
+def config_json_schema() -> dict[str, Any]:
+    """The JSON Schema of the config file (committed as ``config/tidewatch.schema.json``)."""
+    schema = Config.model_json_schema()
+    schema["$schema"] = "https://json-schema.org/draft/2020-12/schema"
+    schema["title"] = "tidewatch config file"
+    return schema
 
 
 def load_config(path: str | os.PathLike[str] | None, environ: dict[str, str] | None = None) -> Config:

@@ -4,7 +4,8 @@ Reference tools, named beside each check that uses them:
 - pandas ``DataFrame.resample`` / ``groupby`` for hourly means and per-service grouping;
 - ``numpy.corrcoef`` for Pearson correlation;
 - Python's ``json`` module as an independent JSON reader, ``datetime.fromisoformat`` (which reads
-  RFC 3339 date-times, including a trailing ``Z``, since Python 3.11) for timestamps.
+  RFC 3339 date-times, including a trailing ``Z``, since Python 3.11 -- from memory of the Python
+  docs; the tests would fail loudly if it did not) for timestamps.
 Thresholds marked "scenario design" come from the magnitudes chosen in service/scenario.py
 (``_magnitude``, the catalogue); they are this project's own numbers, with safety margins.
 """
@@ -44,7 +45,8 @@ DAY = 86400.0
 HOUR = 3600.0
 RECOVERY_S = 4 * HOUR  # memory warms back up within 4 h of a restart (scenario design)
 SEEDS = (7, 8, 2026)
-RFC3339_MS_Z = re.compile(r"^\d{4}-\d{2}-\d{2}T\d{2}:\d{2}:\d{2}\.\d{3}Z$")  # RFC 3339 section 5.6
+# RFC 3339 section 5.6 date-time (section number from memory), with milliseconds and "Z"
+RFC3339_MS_Z = re.compile(r"^\d{4}-\d{2}-\d{2}T\d{2}:\d{2}:\d{2}\.\d{3}Z$")
 BASE_METRICS = ("latency_p95_ms", "errors", "requests", "cpu_util", "memory_mb", "restarts")
 
 
