@@ -143,7 +143,7 @@ def parse_labels(data: str | Iterable[str], *, source: str = "<labels>") -> list
     >>> parse_labels("service,start,end,severity\\n")
     Traceback (most recent call last):
     ...
-    service.labels.LabelsError: <labels> line 2: unknown column 'severity'; the columns are service, start, end, metric, kind, note
+    service.labels.LabelsError: <labels> line 1: unknown column 'severity'; the columns are service, start, end, metric, kind, note
     """
     lines = io.StringIO(data) if isinstance(data, str) else iter(data)
     # Comments and blank lines are dropped before the CSV reader sees them, but the
