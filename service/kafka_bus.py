@@ -139,6 +139,7 @@ class KafkaRunner:
         self.assigned: set[tuple[str, int]] = set()
         self._abort_pending = False
         self.reloader = reloader
+        self._closed_at: list[float] = []  # when each window scored in the open transaction closed
 
     # --- set-up ----------------------------------------------------------------------
     def _ensure_topics(self) -> None:
@@ -207,6 +208,7 @@ class KafkaRunner:
 
     def _on_score(self, service: str, payload: bytes, window: Window) -> None:
         self._produce(self.k.output_topic, payload, key=service.encode("utf-8"))
+        self._closed_at.append(time.monotonic())
 
     def _on_reject(self, code: str, detail: str, raw: bytes, origin: Any) -> None:
         topic, partition, offset = origin
@@ -281,6 +283,11 @@ class KafkaRunner:
                 self._call(lambda: self.producer.send_offsets_to_transaction(offsets, meta, _CALL_TIMEOUT))
             self._call(lambda: self.producer.commit_transaction(_CALL_TIMEOUT))
             self.in_txn = False
+            now = time.monotonic()
+            observe = self.stats.commit_delay_seconds.observe
+            for t in self._closed_at:
+                observe(now - t)
+            self._closed_at.clear()
             self._record_lag()
             self.pending_offsets.clear()
         except _AbortNeeded as exc:
@@ -308,6 +315,7 @@ class KafkaRunner:
                     raise BusFatalError(f"fatal Kafka error while aborting: {err.str()}") from exc
             self.in_txn = False
         self.pending_offsets.clear()
+        self._closed_at.clear()
         parts = sorted(self.assigned)
         for topic, partition in parts:
             self._drop(topic, partition)

@@ -19,6 +19,7 @@ Metric names (all prefixed ``tidewatch_``; counters end in ``_total``, units in 
 ``state_save_failures_total``             checkpoints that failed
 ``state_save_duration_seconds``           histogram of checkpoint durations
 ``window_close_delay_seconds``            histogram: wall clock from a window's end to its score
+``score_commit_delay_seconds``            Kafka histogram: window close to its score committed
 ``source_high_mark_seconds{source}``      newest event time seen per source (epoch seconds)
 ``consumer_lag_messages{topic,partition}`` Kafka: messages between the committed position and the log end
 ``service_score{service}``                latest calibrated score per service
@@ -104,6 +105,11 @@ class RuntimeCollector(Collector):
             P + "window_close_delay_seconds",
             "Wall-clock time from a window's end to its score being emitted.",
             s.close_delay_seconds,
+        )
+        yield _histogram(
+            P + "score_commit_delay_seconds",
+            "Kafka: time from a window's close to its score message being committed.",
+            s.commit_delay_seconds,
         )
         m = GaugeMetricFamily(P + "source_high_mark_seconds", "Newest event time seen per source.", labels=["source"])
         for source, mark in sorted(s.high_marks.copy().items()):

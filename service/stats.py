@@ -36,6 +36,7 @@ class Buckets:
 
 
 SAVE_BOUNDS = (0.001, 0.005, 0.01, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0, 30.0)
+COMMIT_BOUNDS = (0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.0, 5.0, 10.0, 30.0)
 # Window close delay spans live runs (sub-second) and replays of old data (days).
 DELAY_BOUNDS = (0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0, 30.0, 60.0, 300.0, 3600.0, 86400.0)
 
@@ -57,6 +58,8 @@ class RuntimeStats:
         self.save_seconds = Buckets(SAVE_BOUNDS)
         # wall-clock seconds from a window's end to its score being emitted
         self.close_delay_seconds = Buckets(DELAY_BOUNDS)
+        # Kafka: seconds from a window's close (the watermark passing its end) to its score being committed
+        self.commit_delay_seconds = Buckets(COMMIT_BOUNDS)
         # service -> (score, anomalous, window_end); read by the metrics collector
         self.latest: dict[str, tuple[float, bool, float]] = {}
         self.high_marks: dict[str, float] = {}  # source -> high mark (event seconds)

@@ -88,7 +88,7 @@ class Topics:
 
 
 def write_config(path: Path, bootstrap: str, t: Topics, *, keyed: bool = True, lateness: str = "30s",
-                 extra_consumer: dict | None = None) -> Path:
+                 extra_consumer: dict | None = None, batch_size: int = 2000) -> Path:
     consumer = {"session.timeout.ms": 6000, "heartbeat.interval.ms": 500, **(extra_consumer or {})}
     cons = ", ".join(f'"{k}" = {orjson.dumps(v).decode()}' for k, v in consumer.items())
     path.write_text(f"""
@@ -109,6 +109,7 @@ repartition_topic = "{t.repartition}"
 input_keyed = {"true" if keyed else "false"}
 group_id = "{t.group}"
 commit_interval = "500ms"
+batch_size = {batch_size}
 consumer_properties = {{ {cons} }}
 # a killed instance that is not restarted holds read_committed readers back this long
 producer_properties = {{ "transaction.timeout.ms" = 10000 }}
