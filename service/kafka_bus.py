@@ -443,6 +443,7 @@ class KafkaRunner:
             self._drop(tp.topic, tp.partition)
             self.assigned.discard((tp.topic, tp.partition))
         self.pending_offsets.clear()
+        self._closed_at.clear()
         # What this transaction held for partitions we still own must be redone too.
         self._abort_pending = bool(self.assigned)
         log.warning("partitions lost", extra={"event": "lost", "partitions": sorted((tp.topic, tp.partition) for tp in partitions)})
