@@ -35,7 +35,7 @@ import numpy as np
 
 from models.errors import CorruptState, ModelError, SettingsError
 
-__all__ = ["EmpiricalCalibrator"]
+__all__ = ["SCORE_POWER", "EmpiricalCalibrator", "TailCalibrator", "surprise_score"]
 
 
 class EmpiricalCalibrator:
@@ -140,3 +140,107 @@ class EmpiricalCalibrator:
         cal._size = n
         cal._head = n % cal.capacity
         return cal
+
+
+#: The calibrated score is ``1 - p ** SCORE_POWER`` for a tail probability ``p``. With 1/2 the
+#: default threshold 0.99 means ``p <= 1e-4``: at five-minute windows (2016 a week) about one
+#: chance alert onset every five weeks per service, which is what "rarely cries wolf" needs; 0.9
+#: means ``p = 0.01``. The score keeps ranking far into the tail (it reaches 1 only below
+#: ``p = 1e-12`` at six decimals), so a threshold sweep still sees an order.
+SCORE_POWER = 0.5
+#: Share of the history used as the tail, and the fewest tail values the fit uses.
+TAIL_SHARE = 0.1
+TAIL_MIN = 10
+#: Below this many remembered raw scores nothing is surprising (``p = 1``).
+MIN_HISTORY = 20
+
+
+def surprise_score(p: float) -> float:
+    """Calibrated score of a tail probability: ``1 - p ** SCORE_POWER``, in [0, 1].
+
+    >>> surprise_score(1.0), surprise_score(0.01), surprise_score(1e-4), surprise_score(0.0)
+    (0.0, 0.9, 0.99, 1.0)
+    """
+    if p <= 0.0:
+        return 1.0
+    return max(0.0, 1.0 - min(1.0, p) ** SCORE_POWER)
+
+
+class TailCalibrator:
+    """Tail probability of a raw score among the service's own recent raw scores.
+
+    Inside the bulk of the history the probability is empirical, ``(#{h >= raw} + 1) / (n + 1)``
+    (the window itself counted, so it is never 0). Beyond the top ``TAIL_SHARE`` of the history
+    (at least ``TAIL_MIN`` values) it is extrapolated with an exponential tail fitted to the
+    excesses over that level -- the peaks-over-threshold method with shape 0, i.e. an
+    extreme-value tail (Pickands 1975; Balkema & de Haan 1974; from memory):
+    ``p = (k + 1) / (n + 1) * exp(-(raw - u) / beta)`` with ``beta`` the mean excess. A rank
+    alone cannot say anything below ``1 / n``; the tail fit can, which is what a base rate of one
+    alert in thousands of windows needs.
+
+    Parameters
+    ----------
+    capacity
+        Number of most recent raw scores remembered.
+
+    Examples
+    --------
+    >>> cal = TailCalibrator(capacity=1000)
+    >>> for i in range(500):
+    ...     cal.learn(float(i % 50) / 10.0)      # raw scores spread over [0, 4.9]
+    >>> round(cal.p_value(2.0), 3), cal.p_value(4.9) > cal.p_value(7.0), cal.p_value(7.0) < 1e-3
+    (0.601, True, True)
+    """
+
+    __slots__ = ("_cal",)
+
+    def __init__(self, capacity: int = 1000) -> None:
+        self._cal = EmpiricalCalibrator(capacity)
+
+    @property
+    def capacity(self) -> int:
+        return self._cal.capacity
+
+    def __len__(self) -> int:
+        return len(self._cal)
+
+    @property
+    def history(self) -> np.ndarray:
+        """Remembered raw scores, oldest first (a copy)."""
+        return self._cal.history
+
+    def p_value(self, raw: float) -> float:
+        """Estimated chance of a raw score at least this high; 1.0 for a short history."""
+        raw = float(raw)
+        if math.isnan(raw):
+            raise ModelError("cannot calibrate a NaN raw score")
+        cal = self._cal
+        n = cal._size
+        if n < MIN_HISTORY:
+            return 1.0
+        s = cal._sorted[:n]
+        k = min(n - 1, max(TAIL_MIN, int(TAIL_SHARE * n)))
+        u = float(s[n - k - 1])
+        if raw <= u:
+            above = n - int(np.searchsorted(s, raw, side="left"))
+            return (above + 1) / (n + 1)
+        beta = float(s[n - k:].mean()) - u
+        # A tail of ties has no spread; a small floor keeps "just above the ties" from being
+        # infinitely surprising.
+        beta = max(beta, 0.02 * abs(u), 1e-9)
+        return (k + 1) / (n + 1) * math.exp(-(raw - u) / beta)
+
+    def learn(self, raw: float) -> None:
+        """Add ``raw`` to the history, evicting the oldest value once full."""
+        self._cal.learn(raw)
+
+    def to_state(self) -> dict[str, Any]:
+        """Plain-dict state: the capacity and the history, oldest first."""
+        return self._cal.to_state()
+
+    @classmethod
+    def from_state(cls, state: Mapping[str, Any]) -> TailCalibrator:
+        """Rebuild from :meth:`to_state` output; malformed states raise ``CorruptState``."""
+        out = cls.__new__(cls)
+        out._cal = EmpiricalCalibrator.from_state(state)
+        return out

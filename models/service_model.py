@@ -1,38 +1,46 @@
-"""One online model per service: score a closed window, decide, then learn from it.
+"""One online model per service: score a closed window, decide the alert state, then learn.
 
-Kinds (``ModelSettings.kind``):
+The pieces (``ModelSettings.kind`` chooses which scorers take part):
 
-``"adaptive_baseline"``
-    raw score = the largest predictive deviation of the window's features from an exponentially
-    weighted baseline, on the normal scale (:class:`~models.baseline.AdaptiveBaseline`; close to
-    the largest ``|z|`` once the baseline has a few dozen windows).
-``"half_space_trees"``
-    every feature is squashed into [0, 1] as ``0.5 + 0.5 * tanh(z / 3)``, with ``z`` the
-    predictive deviation from a *slow* baseline (half-life ``4 * half_life``), so a level that drifts stays inside
-    the trees' fixed range while a jump lands near 0 or 1; raw score = the half-space-trees score
-    (:class:`~models.hst.HalfSpaceTrees`). The trees' feature set is the first window's; a feature
-    first seen later only reaches the baseline and the contributors, and a tree feature missing
-    from a window is imputed with the slow baseline's mean (``z = 0``, i.e. 0.5).
-``"combined"`` (default)
-    both of the above; each raw score is calibrated on its own history, the combined raw score is
-    the larger of the two calibrated scores, and that is calibrated again so the final score is
-    uniform on the service's own history. The two inner calibrations divide by ``history + 1``
-    (see :meth:`~models.calibration.EmpiricalCalibrator.score`): with the plain fraction, every
-    "new maximum" of the short early histories would be exactly 1.0, those 1.0s would stay in the
-    outer history for ``calibration_history`` windows, and a later, genuine maximum could never
-    rank above them (on synthetic streams this hid most incidents of a model's first
-    ``calibration_history`` windows).
+* a :class:`~models.seasonal.SeasonalBaseline` per service predicts every feature (level, or
+  hour-of-day / hour-of-week profile when the service has such cycles) and turns each window
+  into per-feature evidence on the normal scale: deviation ``z``, first difference ``change``,
+  and ``stuck`` (a value repeated by a feature that rarely repeats). It also gives the
+  contributors, for every kind;
+* ``"adaptive_baseline"``: raw score from the features' ``max(|z|, stuck)`` (see below);
+* ``"half_space_trees"``: raw score = half-space trees (:class:`~models.hst.HalfSpaceTrees`)
+  over two coordinates per feature, ``0.5 + 0.5 * tanh(z / 3)`` and the same of ``change``: the
+  baseline-normalised level and change of a single metric are already in [0, 1] however its
+  range drifts, and a jump lands near 0 or 1. The trees' feature set is the first window's;
+* ``"combined"`` (default): both; the window's tail probability is ``min(1, 2 * min(p_b, p_t))``
+  (Bonferroni over the two) once both can score, else the one that can.
 
-Every kind keeps the baseline for the contributors: each feature's observed value, the
-baseline mean *before* this window and the signed z-score, most deviating first.
+Each raw score becomes a tail probability ``p`` among the service's own recent raw scores
+(:class:`~models.calibration.TailCalibrator`: empirical in the bulk, an exponential tail fitted
+beyond it), never below the most unusual feature's own tail probability; the calibrated score
+is ``1 - sqrt(p)``: the same score means the same rarity on every service, whatever its metrics.
+At the default threshold 0.99 a window must be rarer than 1 in 10 000 of the service's own
+windows to open an alert. The baseline's raw score is the normal deviate of the smallest
+per-feature tail probability (:attr:`~models.seasonal.Evidence.p`), so a feature whose
+deviations are routinely huge counts for less than a quiet one that moves.
 
-The output score is the fraction of the service's past raw scores (last ``calibration_history``)
-strictly below this window's raw score, computed before the window joins the history. A component
-contributes nothing (and its history does not grow) until it can score: the baseline once a
-feature has been seen twice, the trees once their first mass window is complete.
+Alert state (``Assessment.anomalous``), with hysteresis:
+
+* an alert opens on a warmed-up window with ``score >= threshold``;
+* while open, a window with ``score >= min(exit_level, threshold)`` resets the calm count and
+  any other window adds one; the alert clears on the ``calm_windows``-th calm window in a row
+  (that window is not anomalous). One incident therefore gives one alert onset, and a recovered
+  service clears after ``calm_windows`` windows;
+* nothing is learned from a window while its alert is open (baseline, trees and calibration all
+  stay as they were), so an incident never becomes the normal it is measured against;
+* an alert still open after ``adapt_after`` windows is a new normal (a deploy that moved a
+  level): every prediction is moved by the mean deviation seen during the alert, the alert
+  clears on that window and learning resumes. See ``ModelSettings.adapt_after`` for the reasons
+  behind the default.
 
 During the first ``warm_up`` windows a score is still produced but ``warming_up`` is true and the
-window is never anomalous.
+window is never anomalous. ``at`` (the window start, seconds since the Unix epoch, UTC) drives
+the seasonal profiles; without it only the level prediction is used.
 
 Randomness comes only from the trees' seed, ``zlib.crc32(service) ^ settings.seed``, so the same
 service, settings and inputs give the same scores in any process (Python's ``hash()`` is salted).
@@ -41,16 +49,20 @@ Examples
 --------
 >>> from models import ModelSettings, build_model
 >>> model = build_model("checkout-api", ModelSettings(kind="adaptive_baseline", warm_up=20))
->>> for i in range(60):
-...     result = model.assess({"latency_p95_ms.mean": 200.0 + (i % 5), "count": 12.0 + i % 3})
+>>> for i in range(300):
+...     result = model.assess({"latency_p95_ms.mean": 200.0 + (i % 5), "count": 12.0 + i % 3},
+...                           at=1772409600.0 + 300.0 * i)
 >>> result.warming_up, result.anomalous
 (False, False)
->>> result = model.assess({"latency_p95_ms.mean": 450.0, "count": 13.0})
+>>> result = model.assess({"latency_p95_ms.mean": 450.0, "count": 13.0}, at=1772409600.0 + 300.0 * 300)
 >>> result.anomalous, result.score
 (True, 1.0)
 >>> top = result.contributors[0]
 >>> top.feature, top.observed, round(top.expected, 1), round(top.deviation, 1)
-('latency_p95_ms.mean', 450.0, 202.1, 173.6)
+('latency_p95_ms.mean', 450.0, 202.1, 32.3)
+>>> [model.assess({"latency_p95_ms.mean": 201.0 + i, "count": 12.0 + i % 3},
+...               at=1772409600.0 + 300.0 * (301 + i)).anomalous for i in range(4)]
+[True, True, False, False]
 """
 
 from __future__ import annotations
@@ -64,10 +76,10 @@ from typing import Any
 import numpy as np
 
 from models.base import split_features
-from models.baseline import AdaptiveBaseline
-from models.calibration import EmpiricalCalibrator
+from models.calibration import TailCalibrator, surprise_score
 from models.errors import CorruptState, SettingsError, StateError
 from models.hst import HalfSpaceTrees
+from models.seasonal import Evidence, SeasonalBaseline, tail_deviate
 from models.settings import MODEL_KINDS, ModelSettings
 
 __all__ = [
@@ -81,14 +93,13 @@ __all__ = [
 
 #: Number of contributors reported per window.
 MAX_CONTRIBUTORS = 5
-#: The scaling baseline of the trees forgets this many times more slowly than the main one, so
-#: that a shift lasting a few mass windows still looks unusual to the trees.
-SLOW_FACTOR = 4.0
 #: ``z`` at which the squashed value is 0.5 ± 0.38 (tanh(1) / 2); three standard deviations
 #: use most of the unit range without flattening moderate deviations.
 SQUASH_Z = 3.0
+#: Tree coordinates per feature: the squashed deviation and the squashed change.
+_TREE_PARTS = ("level", "change")
 
-_STATE_FORMAT = 1
+_STATE_FORMAT = 2
 
 
 @dataclass(slots=True)
@@ -98,16 +109,16 @@ class Contribution:
     feature: str
     observed: float
     expected: float
-    deviation: float  #: signed z-score against the baseline before this window
+    deviation: float  #: signed deviation (normal scale) from the prediction before this window
 
 
 @dataclass(slots=True)
 class Assessment:
     """Outcome of :meth:`ServiceModel.assess` for one window."""
 
-    score: float  #: calibrated, in [0, 1]
+    score: float  #: calibrated, in [0, 1]: ``1 - sqrt(tail probability)``
     raw: float  #: the model's raw score (higher = more unusual)
-    anomalous: bool  #: ``score >= threshold`` and not warming up
+    anomalous: bool  #: the alert state after this window (see the module docstring)
     warming_up: bool
     contributors: list[Contribution] = field(default_factory=list)
 
@@ -123,14 +134,19 @@ def service_seed(service: str, seed: int) -> int:
     return zlib.crc32(service.encode("utf-8")) ^ seed
 
 
+def _squash(z: float) -> float:
+    return 0.5 + 0.5 * math.tanh(z / SQUASH_Z)
+
+
 class ServiceModel:
     """The online model of one service (see the module docstring).
 
     Build it with :func:`build_model`; restore it with :meth:`from_state`.
     """
 
-    __slots__ = ("service", "settings", "kind", "windows_seen", "_baseline", "_scaler",
-                 "_trees", "_cal_baseline", "_cal_trees", "_cal_combined")
+    __slots__ = ("service", "settings", "kind", "windows_seen", "_baseline", "_trees",
+                 "_cal_baseline", "_cal_trees", "_alert_on", "_alert_len", "_calm",
+                 "_shift", "_shift_n", "_last_at")
 
     def __init__(self, service: str, settings: ModelSettings) -> None:
         if not isinstance(service, str) or not service:
@@ -141,92 +157,157 @@ class ServiceModel:
         self.settings = settings
         self.kind = settings.kind
         self.windows_seen = 0
-        self._baseline = AdaptiveBaseline(settings.half_life)
+        self._baseline = SeasonalBaseline(settings.half_life)
         uses_baseline = self.kind in ("adaptive_baseline", "combined")
         uses_trees = self.kind in ("half_space_trees", "combined")
         history = settings.calibration_history
-        self._cal_baseline = EmpiricalCalibrator(history) if uses_baseline else None
-        self._scaler = AdaptiveBaseline(SLOW_FACTOR * settings.half_life) if uses_trees else None
+        self._cal_baseline = TailCalibrator(history) if uses_baseline else None
         self._trees = (HalfSpaceTrees(settings.trees, settings.height, settings.mass_window,
                                       seed=service_seed(service, settings.seed))
                        if uses_trees else None)
-        self._cal_trees = EmpiricalCalibrator(history) if uses_trees else None
-        self._cal_combined = EmpiricalCalibrator(history) if self.kind == "combined" else None
+        self._cal_trees = TailCalibrator(history) if uses_trees else None
+        self._alert_on = False
+        self._alert_len = 0
+        self._calm = 0
+        # Sum of (value - prediction) per feature position and prediction, over the open alert.
+        self._shift: dict[int, list[float]] = {}
+        self._shift_n = 0
+        self._last_at = math.nan
 
     def __repr__(self) -> str:
         return (f"ServiceModel(service={self.service!r}, kind={self.kind!r}, "
                 f"windows_seen={self.windows_seen})")
 
-    # ------------------------------------------------------------------ scoring
-    def assess(self, features: dict[str, float]) -> Assessment:
-        """Score this window's features, decide anomalous, then learn from them.
+    @property
+    def alerting(self) -> bool:
+        """Whether an alert is open after the last window."""
+        return self._alert_on
 
-        Call it exactly once per closed window. ``features`` is not modified; non-finite values
-        are treated as missing; feature order does not matter.
+    # ------------------------------------------------------------------ scoring
+    def assess(self, features: dict[str, float], at: float | None = None) -> Assessment:
+        """Score this window's features, update the alert state, then learn (unless alerting).
+
+        Call it exactly once per closed window, in time order. ``features`` is not modified;
+        non-finite values are treated as missing; feature order does not matter. ``at`` is the
+        window start in seconds since the Unix epoch (UTC), or None when unknown.
         """
         names, values = split_features(features)
+        if at is not None:
+            at = float(at)
+            if not math.isfinite(at):
+                raise SettingsError(f"at must be a finite epoch time, got {at!r}")
         baseline = self._baseline
+        if at is not None:
+            if not math.isnan(self._last_at):
+                baseline.observe_step(at - self._last_at)
+            self._last_at = at
         idx = baseline.locate(names, add=True)
-        expected, z, tail, scorable = baseline.compare(idx, values)
-        contributors = self._contributors(names, values, expected, z, scorable)
+        evidence = baseline.compare(idx, values, at)
+        contributors = self._contributors(names, values, evidence)
 
-        baseline_part = trees_part = None  # (raw, ready)
+        p_b = p_t = 1.0
+        raw_b = raw_t = 0.0
+        ready_b = ready_t = False
         if self._cal_baseline is not None:
-            baseline_part = (max(map(abs, tail), default=0.0), any(scorable))
+            p_min = min((e.p for e in evidence if e.scorable), default=1.0)
+            ready_b = any(e.scorable for e in evidence)
+            raw_b = tail_deviate(0.5 * p_min)
+            if ready_b:
+                # The window's chance cannot be below its most unusual feature's own chance.
+                p_b = max(self._cal_baseline.p_value(raw_b), p_min)
+        path = None
         if self._trees is not None:
-            trees_part = self._score_learn_trees(names, values)
-        baseline.update(idx, values)
-
-        if self.kind == "adaptive_baseline":
-            raw, score = self._calibrate(self._cal_baseline, *baseline_part)
-        elif self.kind == "half_space_trees":
-            raw, score = self._calibrate(self._cal_trees, *trees_part)
+            path = self._tree_path(names, evidence)
+            if path is not None:
+                ready_t = self._trees.ready
+                raw_t = self._trees._score_path(path)
+                if ready_t:
+                    p_t = self._cal_trees.p_value(raw_t)
+        if ready_b and ready_t:
+            p = min(1.0, 2.0 * min(p_b, p_t))
         else:
-            _, p_baseline = self._calibrate(self._cal_baseline, *baseline_part, count_self=True)
-            _, p_trees = self._calibrate(self._cal_trees, *trees_part, count_self=True)
-            ready = baseline_part[1] or trees_part[1]
-            raw, score = self._calibrate(self._cal_combined, max(p_baseline, p_trees), ready)
+            p = p_b if ready_b else p_t
+        score = surprise_score(p)
+        raw = raw_t if self.kind == "half_space_trees" else raw_b
 
         warming_up = self.windows_seen < self.settings.warm_up
         self.windows_seen += 1
-        anomalous = (not warming_up) and score >= self.settings.threshold
+        anomalous = self._decide(score, warming_up, idx, values, at)
+
+        learn = not self._alert_on
+        strengths = [e.strength if e.scorable else -1.0 for e in evidence]
+        if anomalous and self._alert_len == 1:
+            # The first window of an alert counts once in the features' tails: how often a
+            # feature produces alert-sized deviations is what makes a routine one unsurprising.
+            baseline.learn_tail([i for i, st in zip(idx, strengths) if st >= 0.0],
+                                [st for st in strengths if st >= 0.0])
+        baseline.update(idx, values, at, learn=learn, strengths=strengths)
+        if learn:
+            if path is not None:
+                self._trees._learn_path(path)
+            if ready_b:
+                self._cal_baseline.learn(raw_b)
+            if ready_t:
+                self._cal_trees.learn(raw_t)
         return Assessment(score, raw, anomalous, warming_up, contributors)
 
-    @staticmethod
-    def _calibrate(calibrator: EmpiricalCalibrator, raw: float, ready: bool, *,
-                   count_self: bool = False) -> tuple[float, float]:
-        # A component that cannot score yet says nothing: score 0 and no history entry, so
-        # placeholder zeros never dilute the calibration.
-        if not ready:
-            return raw, 0.0
-        return raw, calibrator.score_learn(raw, count_self=count_self)
+    def _decide(self, score: float, warming_up: bool, idx: list[int], values: list[float],
+                at: float | None) -> bool:
+        s = self.settings
+        if not self._alert_on:
+            if warming_up or score < s.threshold:
+                return False
+            self._alert_on, self._alert_len, self._calm = True, 0, 0
+            self._shift, self._shift_n = {}, 0
+        else:
+            self._calm = 0 if score >= min(s.exit_level, s.threshold) else self._calm + 1
+            if self._calm >= s.calm_windows:
+                self._alert_on = False
+                return False
+        self._alert_len += 1
+        shift = self._shift
+        for i, r in zip(idx, self._baseline.residuals(idx, values, at)):
+            acc = shift.get(i)
+            if acc is None:
+                shift[i] = list(r)
+            else:
+                acc[0] += r[0]
+                acc[1] += r[1]
+                acc[2] += r[2]
+        self._shift_n += 1
+        if self._alert_len >= s.adapt_after:
+            # A persistent shift: predict the level seen during the alert from now on.
+            n = self._shift_n
+            positions = sorted(shift)
+            self._baseline.shift(positions, [tuple(v / n for v in shift[i]) for i in positions])
+            self._alert_on = False
+            self._shift, self._shift_n = {}, 0
+            return False
+        return True
 
-    def _score_learn_trees(self, names: list[str], values: list[float]) -> tuple[float, bool]:
-        trees, scaler = self._trees, self._scaler
-        sidx = scaler.locate(names, add=True)
+    def _tree_path(self, names: list[str], evidence: list[Evidence]) -> np.ndarray | None:
+        trees = self._trees
         if trees.features is None:
             if not names:
-                return 0.0, False  # nothing to build the trees on yet
-            trees.build(names)
-        _, _, z, _ = scaler.compare(sidx, values)
-        v = np.full(len(trees.features), 0.5)  # missing -> slow-baseline mean -> z = 0
+                return None  # nothing to build the trees on yet
+            trees.build([f"{n}|{part}" for n in names for part in _TREE_PARTS])
+        v = np.full(len(trees.features), 0.5)  # missing -> the prediction itself -> 0.5
         index = trees.feature_index
-        for name, zi in zip(names, z):
-            i = index.get(name)
-            if i is not None:
-                v[i] = 0.5 + 0.5 * math.tanh(zi / SQUASH_Z)
-        ready = trees.ready
-        raw = trees.score_learn_vector(v)
-        scaler.update(sidx, values)
-        return raw, ready
+        for name, e in zip(names, evidence):
+            i = index.get(f"{name}|level")
+            if i is not None and e.scorable:
+                v[i] = _squash(e.z)
+                v[index[f"{name}|change"]] = _squash(e.change)
+        return trees._path(v)
 
     @staticmethod
-    def _contributors(names: list[str], values: list[float], expected: list[float],
-                      z: list[float], scorable: list[bool]) -> list[Contribution]:
-        order = [i for i in range(len(names)) if scorable[i] and z[i] != 0.0]
-        # Largest |z| first; the name breaks ties so the list never depends on input order.
-        order.sort(key=lambda i: (-abs(z[i]), names[i]))
-        return [Contribution(names[i], values[i], expected[i], z[i])
+    def _contributors(names: list[str], values: list[float],
+                      evidence: list[Evidence]) -> list[Contribution]:
+        order = [i for i in range(len(names)) if evidence[i].scorable and evidence[i].strength > 0.0]
+        # Rarest first (each feature's own tail probability), then the strongest evidence; the
+        # name breaks ties so the list never depends on input order.
+        order.sort(key=lambda i: (evidence[i].p, -evidence[i].strength, names[i]))
+        return [Contribution(names[i], values[i], evidence[i].expected, evidence[i].z)
                 for i in order[:MAX_CONTRIBUTORS]]
 
     # ------------------------------------------------------------------ state
@@ -235,18 +316,27 @@ class ServiceModel:
         def opt(part: Any) -> Any:
             return None if part is None else part.to_state()
 
+        positions = sorted(self._shift)
         return {
             "format": _STATE_FORMAT,
             "service": self.service,
             "settings": self.settings.to_dict(),
             "windows_seen": self.windows_seen,
             "baseline": self._baseline.to_state(),
-            "scaler": opt(self._scaler),
             "trees": opt(self._trees),
             "calibration": {
                 "baseline": opt(self._cal_baseline),
                 "trees": opt(self._cal_trees),
-                "combined": opt(self._cal_combined),
+            },
+            "alert": {
+                "on": self._alert_on,
+                "length": self._alert_len,
+                "calm": self._calm,
+                "shift_n": self._shift_n,
+                "shift_at": np.array(positions, dtype=np.int64),
+                "shift": np.array([self._shift[i] for i in positions],
+                                  dtype=np.float64).reshape(len(positions), 3),
+                "last_at": np.array([self._last_at], dtype=np.float64),
             },
         }
 
@@ -268,14 +358,31 @@ class ServiceModel:
             if isinstance(windows_seen, bool) or not isinstance(windows_seen, int) or windows_seen < 0:
                 raise CorruptState(f"windows_seen must be an int >= 0, got {windows_seen!r}")
             model.windows_seen = windows_seen
-            model._baseline = cls._restore(AdaptiveBaseline, state["baseline"], model._baseline)
-            model._scaler = cls._restore(AdaptiveBaseline, state["scaler"], model._scaler)
+            model._baseline = cls._restore(SeasonalBaseline, state["baseline"], model._baseline)
             model._trees = cls._restore(HalfSpaceTrees, state["trees"], model._trees)
             calibration = state["calibration"]
-            for key in ("baseline", "trees", "combined"):
+            for key in ("baseline", "trees"):
                 attr = f"_cal_{key}"
-                setattr(model, attr, cls._restore(EmpiricalCalibrator, calibration[key],
+                setattr(model, attr, cls._restore(TailCalibrator, calibration[key],
                                                   getattr(model, attr)))
+            alert = state["alert"]
+            on, length, calm, shift_n = alert["on"], alert["length"], alert["calm"], alert["shift_n"]
+            if not isinstance(on, bool) or any(isinstance(v, bool) or not isinstance(v, int) or v < 0
+                                               for v in (length, calm, shift_n)):
+                raise CorruptState("alert state must be a bool and three counts >= 0")
+            at, shift, last_at = alert["shift_at"], alert["shift"], alert["last_at"]
+            n_features = len(model._baseline.features)
+            if (not isinstance(at, np.ndarray) or at.dtype != np.int64 or at.ndim != 1
+                    or not isinstance(shift, np.ndarray) or shift.dtype != np.float64
+                    or shift.shape != (at.size, 3) or not np.isfinite(shift).all()
+                    or (at.size and (at.min() < 0 or at.max() >= n_features))
+                    or not isinstance(last_at, np.ndarray) or last_at.shape != (1,)
+                    or last_at.dtype != np.float64):
+                raise CorruptState("malformed alert shift arrays")
+            model._alert_on, model._alert_len, model._calm = on, length, calm
+            model._shift = {int(i): row for i, row in zip(at.tolist(), shift.tolist())}
+            model._shift_n = shift_n
+            model._last_at = float(last_at[0])
         except StateError:
             raise
         except (KeyError, TypeError, ValueError, AttributeError) as exc:
@@ -293,7 +400,7 @@ class ServiceModel:
         if not isinstance(part, Mapping):
             raise CorruptState(f"{kind.__name__} state must be a mapping")
         restored = kind.from_state(part)
-        if kind is AdaptiveBaseline:
+        if kind is SeasonalBaseline:
             same = restored.half_life == fresh.half_life
         elif kind is HalfSpaceTrees:
             same = ((restored.n_trees, restored.height, restored.window_size, restored.seed,

@@ -72,6 +72,23 @@ class ModelSettings:
         Number of past raw scores kept per service to calibrate new ones.
     seed
         Non-negative integer combined with a stable hash of the service name.
+    exit_level
+        Alert hysteresis: once alerting, a window scoring at least ``min(exit_level,
+        threshold)`` is not calm; in (0, 1]. The default 0.9 is a tail probability of 1 % (see
+        :data:`models.calibration.SCORE_POWER`): far below the entry level, so an incident whose
+        score wobbles around the threshold stays one alert.
+    calm_windows
+        Alert hysteresis: the alert clears at the ``calm_windows``-th calm window in a row, so
+        every alert lasts at least that long. The default 3 (15 minutes of five-minute windows)
+        bridges a brief lull inside one incident without holding a recovered service for long.
+    adapt_after
+        An alert still on after this many windows is taken as a new normal: the baseline moves
+        to the level seen during the alert, learning resumes and the alert clears. While an alert
+        is on, nothing is learned (an incident must not become the baseline it is measured
+        against). The default 36 windows (3 hours of five-minute windows; the same as
+        ``warm_up``, the history already deemed enough to learn a service) is longer than a
+        typical incident and short enough that a deploy that moved a level does not alert all
+        day.
     """
 
     kind: str = "combined"
@@ -83,6 +100,9 @@ class ModelSettings:
     half_life: float = 24.0
     calibration_history: int = 1000
     seed: int = 0
+    exit_level: float = 0.9
+    calm_windows: int = 3
+    adapt_after: int = 36
 
     def __post_init__(self) -> None:
         if self.kind not in MODEL_KINDS:
@@ -99,6 +119,12 @@ class ModelSettings:
         _check_int("mass_window", self.mass_window, 1)
         _check_int("calibration_history", self.calibration_history, 1)
         _check_int("seed", self.seed, 0)
+        exit_level = _check_real("exit_level", self.exit_level)
+        if not 0.0 < exit_level <= 1.0:
+            raise SettingsError(f"exit_level must be in (0, 1], got {exit_level}")
+        _check_int("calm_windows", self.calm_windows, 1)
+        _check_int("adapt_after", self.adapt_after, 1)
+        object.__setattr__(self, "exit_level", exit_level)
         # Store the real-valued fields as float so a saved state reads back identically.
         object.__setattr__(self, "threshold", threshold)
         object.__setattr__(self, "half_life", half_life)

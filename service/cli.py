@@ -94,8 +94,26 @@ def cmd_replay(args: argparse.Namespace) -> int:
             config = _override_window(config, parse_duration(args.window))
         except ValueError as exc:
             raise ConfigError(f"--window: {exc}") from exc
-    summary = replay(config, args.input, args.output, args.rejects)
+    labels = None
+    if args.labels is not None:
+        from service.labels import read_labels
+
+        try:
+            labels = read_labels(args.labels)  # a bad labels file fails before a long replay
+        except TidewatchError as exc:
+            raise ConfigError(f"--labels: {exc}") from exc
+    if args.report is not None and args.output == "-":
+        raise ConfigError("--report reads the scores back: give --output a file, not -")
+    from service.progress import Progress
+
+    summary = replay(config, args.input, args.output, args.rejects, progress=Progress.for_input(args.input))
     print(summary.describe(), file=sys.stderr)
+    if args.report is not None:
+        from service.report import write_report
+
+        write_report(args.report, args.output, input_path=args.input, labels=labels,
+                     progress=Progress.for_input(args.input, label="report"))
+        print(f"report -> {args.report}", file=sys.stderr)
     return EXIT_OK
 
 
@@ -152,6 +170,9 @@ def build_parser() -> argparse.ArgumentParser:
     rp.add_argument("--window", default=None, metavar="DURATION", help="window length for every service, e.g. 5m")
     rp.add_argument("--config", default=None, help="config file (TOML)")
     rp.add_argument("--rejects", default=None, help="where rejected lines go, with their reasons")
+    rp.add_argument("--report", default=None, metavar="HTML", help="write a self-contained HTML backtest report")
+    rp.add_argument("--labels", default=None, metavar="CSV",
+                    help="labelled incidents (service,start,end[,metric,kind,note]) drawn and scored in the report")
     rp.set_defaults(func=cmd_replay)
 
     d = sub.add_parser("demo", help="generate the demo scenario, score it, and report what was caught", epilog=EPILOG)

@@ -38,6 +38,13 @@ def run_demo(*, seed: int = 7, days: float = 7.0, out_dir: str = "demo-output", 
     rejects_path = d / "rejects.jsonl"
     n = scenario.write_jsonl(metrics_path, bad_lines=12)
     summary = replay(config, str(metrics_path), str(scores_path), str(rejects_path))
+    from service.labels import write_labels
+    from service.report import write_report
+
+    labels_path = d / "labels.csv"
+    report_path = d / "report.html"
+    write_labels(labels_path, scenario.incidents)
+    write_report(report_path, scores_path, input_path=metrics_path, labels_path=labels_path)
     scores = read_scores(str(scores_path))
     window = config.defaults.window
     results, false_onsets = match_incidents(scores, scenario.incidents, window)
@@ -45,7 +52,8 @@ def run_demo(*, seed: int = 7, days: float = 7.0, out_dir: str = "demo-output", 
     p = lambda *a: print(*a, file=out)  # noqa: E731
     p(f"{scenario.organisation}: {len(scenario.services)} services, {days:g} days, {n} lines -> {metrics_path}")
     p(summary.describe())
-    p(f"scores -> {scores_path}; rejects -> {rejects_path}")
+    p(f"scores -> {scores_path}; rejects -> {rejects_path}; labels -> {labels_path}")
+    p(f"report -> {report_path} (open it in a browser)")
     p("")
     p(f"{'incident':<15} {'service':<18} {'metric':<16} {'onset (UTC)':<21} {'caught':<7} {'delay':<7} named")
     for r in results:

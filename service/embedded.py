@@ -110,7 +110,7 @@ class _Loop:
                     continue
             yield lines
 
-    def pump(self, on_batch=None) -> None:
+    def pump(self, on_batch=None, progress=None) -> None:
         engine = self.engine
         src = self.src
         for lines in self.batches():
@@ -118,6 +118,8 @@ class _Loop:
             engine.feed(src, lines, lambda i, base=base: {"line": base + i + 1})
             self.line = base + len(lines)
             engine.stats.heartbeat = time.monotonic()
+            if progress is not None:
+                progress.advance(sum(map(len, lines)))
             if on_batch is not None:
                 on_batch()
 
@@ -148,7 +150,7 @@ def _summary(engine: Engine, lines: int, started: float) -> RunSummary:
     )
 
 
-def replay(config: Config, input_path: str, output: str, rejects: str | None = None) -> RunSummary:
+def replay(config: Config, input_path: str, output: str, rejects: str | None = None, *, progress=None) -> RunSummary:
     """Score a recorded file from fresh models; flush every window at the end.
 
     >>> import tempfile, os
@@ -170,9 +172,11 @@ def replay(config: Config, input_path: str, output: str, rejects: str | None = N
     try:
         with _open_input(input_path) as f:
             loop = _Loop(engine, src, f, line=0, follow=False, stop=threading.Event())
-            loop.pump()
+            loop.pump(progress=progress)
         engine.flush(src)
     finally:
+        if progress is not None:
+            progress.finish()
         scores.close()
         if rej is not None:
             rej.close()

@@ -140,7 +140,7 @@ class Engine:
             settings = registry.settings(service)
             model = registry.model(service)
             features = window_features(window, settings.features)
-            assessment = model.assess(features)
+            assessment = model.assess(features, at=window.start)
             registry.dirty.add(service)
             payload = encode_score(
                 service, window.start, window.end, window.count, model.kind, model.settings.threshold, assessment

@@ -39,7 +39,7 @@ from service.changelog import PartitionState, apply_record, encode_mark, encode_
 from service.config import Config, KafkaConfig
 from service.decode import Rejected
 from service.engine import Engine
-from service.errors import BusFatalError, TidewatchError
+from service.errors import BusFatalError, ConfigError, TidewatchError
 from service.httpserver import MetricsServer
 from service.metrics import build_registry
 from service.stats import RuntimeStats
@@ -494,9 +494,12 @@ class KafkaRunner:
     def run(self) -> None:
         k = self.k
         self._ensure_topics()
-        self.producer = Producer(producer_settings(k, self.instance))
+        try:
+            self.producer = Producer(producer_settings(k, self.instance))
+            self.consumer = Consumer(consumer_settings(k))
+        except KafkaException as exc:
+            raise ConfigError(f"[kafka] client settings refused by librdkafka: {exc.args[0].str()}") from exc
         self._call(lambda: self.producer.init_transactions(_CALL_TIMEOUT))
-        self.consumer = Consumer(consumer_settings(k))
         topics = sorted(self.scoring_topics | self.forward_topics)
         self.consumer.subscribe(topics, on_assign=self._on_assign, on_revoke=self._on_revoke, on_lost=self._on_lost)
         server = None

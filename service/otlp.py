@@ -130,8 +130,10 @@ OTLP_SKIPS: dict[str, str] = {
 _FORMAT = "tidewatch.otlp-series/1"
 _NO_RECORDED_VALUE = 1  # DataPointFlags.DATA_POINT_FLAGS_NO_RECORDED_VALUE_MASK
 _DELTA, _CUMULATIVE = 1, 2  # AggregationTemporality values
-_NS = 1e-9
-_MIN_SCALE, _MAX_SCALE = -10, 20  # the range the OTLP exponential histogram allows
+_NS_PER_S = 1e9  # divided by, not multiplied by 1e-9: whole seconds stay exact
+# The proto leaves scale unrestricted; the SDK specification keeps it in [-10, 20] (from
+# memory), and far outside that the bucket bounds overflow or stop being distinct doubles.
+_MIN_SCALE, _MAX_SCALE = -10, 20
 
 
 class OtlpStateError(StateStoreError):
@@ -228,6 +230,33 @@ def _explicit_segments(bounds: Sequence[float], counts: Sequence[int]) -> list[t
     return out
 
 
+def _valid_bounds(bounds: tuple) -> bool:
+    return all(math.isfinite(b) for b in bounds) and all(b < c for b, c in zip(bounds, bounds[1:]))
+
+
+def _explicit_quantile(bounds: Sequence[float], counts: Sequence[int], q: float) -> float | None:
+    """The single-layout case of :func:`histogram_quantile`, walked with exact integer counts.
+
+    >>> _explicit_quantile([10.0, 50.0], [2, 6, 2], 0.5)   # rank 5 in (10, 50] after 2: 10 + 40 * 3 / 6
+    30.0
+    """
+    total = sum(counts)
+    if total <= 0:
+        return None
+    rank = q * total
+    last = len(bounds)
+    cum = 0
+    for k, n in enumerate(counts):
+        if n and cum + n >= rank:
+            if k == last:
+                return bounds[-1]
+            hi = bounds[k]
+            lo = (0.0 if bounds[0] > 0 else hi) if k == 0 else bounds[k - 1]
+            return lo + (hi - lo) * (rank - cum) / n
+        cum += n
+    return bounds[-1]
+
+
 def _exp_bound(index: int, scale: int) -> float:
     try:
         return 2.0 ** (index * 2.0**-scale)
@@ -286,7 +315,15 @@ def _canon(attrs: Any) -> bytes:
     # canonical form of the set whatever order the sender used.
     if not attrs:
         return b""
+    if len(attrs) == 1:
+        return attrs[0].SerializeToString(deterministic=True)
     return b"".join(sorted(kv.SerializeToString(deterministic=True) for kv in attrs))
+
+
+def _series_key(prefix: bytes, kind: bytes, name: bytes, attrs: Any) -> bytes:
+    # prefix and kind have fixed lengths and a printable name holds no NUL, so this
+    # concatenation is unambiguous; one hash call per point keeps the hot path short.
+    return hashlib.blake2b(prefix + kind + name + b"\0" + _canon(attrs), digest_size=16).digest()
 
 
 def _digest(*parts: bytes) -> bytes:
@@ -301,7 +338,7 @@ def _strip_exemplars(obj: dict) -> None:
     # Exemplars are the only place metrics carry trace and span ids, which OTLP/JSON
     # writes as hex where the protobuf JSON mapping expects base64; they are unused
     # here, so they are dropped before parsing rather than translated.
-    for rm in obj.get("resourceMetrics") or ():
+    for rm in _dicts(obj, "resourceMetrics"):
         for sm in _dicts(rm, "scopeMetrics"):
             for m in _dicts(sm, "metrics"):
                 for kind in ("gauge", "sum", "histogram", "exponentialHistogram"):
@@ -309,6 +346,202 @@ def _strip_exemplars(obj: dict) -> None:
                     if type(data) is dict:
                         for p in _dicts(data, "dataPoints"):
                             p.pop("exemplars", None)
+
+
+class _Slow(Exception):
+    """The fast OTLP/JSON reader met something it leaves to the general parser."""
+
+
+# Keys the fast reader knows per message; any other key (a newer field, a snake_case
+# name, which the general parser also accepts) sends the payload to the general parser.
+_K_REQ = frozenset({"resourceMetrics"})
+_K_RM = frozenset({"resource", "scopeMetrics", "schemaUrl"})
+_K_RES = frozenset({"attributes", "droppedAttributesCount"})
+_K_SM = frozenset({"scope", "metrics", "schemaUrl"})
+_K_SCOPE = frozenset({"name", "version", "attributes", "droppedAttributesCount"})
+_K_KV = frozenset({"key", "value"})
+_K_METRIC = frozenset({"name", "description", "unit", "gauge", "sum", "histogram", "exponentialHistogram", "summary"})
+_K_DATA = frozenset({"dataPoints", "aggregationTemporality", "isMonotonic"})
+_K_POINT = frozenset({"attributes", "startTimeUnixNano", "timeUnixNano", "flags"})
+_K_NUM = _K_POINT | {"asDouble", "asInt"}
+_K_HIST = _K_POINT | {"count", "sum", "bucketCounts", "explicitBounds", "min", "max"}
+_K_EXP = _K_POINT | {"count", "sum", "scale", "zeroCount", "positive", "negative", "min", "max", "zeroThreshold"}
+_K_BUCKETS = frozenset({"offset", "bucketCounts"})
+_K_SUMMARY = _K_POINT | {"count", "sum", "quantileValues"}
+_K_QV = frozenset({"quantile", "value"})
+_DATA_KEYS = ("gauge", "sum", "histogram", "exponentialHistogram", "summary")
+
+
+def _obj(v: Any, keys: frozenset) -> dict:
+    if type(v) is not dict or not v.keys() <= keys:
+        raise _Slow
+    return v
+
+
+def _arr(d: dict, key: str) -> list:
+    v = d.get(key, ())
+    if type(v) is list or v == ():
+        return v
+    raise _Slow
+
+
+def _int(v: Any) -> int:
+    # 64-bit integers are strings in OTLP/JSON; plain numbers are accepted as well.
+    if type(v) is int:
+        return v
+    if type(v) is str and v.isascii() and (v.isdigit() or (v[:1] == "-" and v[1:].isdigit())):
+        return int(v)
+    raise _Slow
+
+
+def _float(v: Any) -> float:
+    if type(v) is float or type(v) is int:
+        return float(v)
+    raise _Slow  # "NaN", "Infinity" and the like: the general parser knows them
+
+
+def _attrs_into(container: Any, items: list) -> None:
+    for item in items:
+        kv = container.add(key=_str(_obj(item, _K_KV).get("key", "")))
+        v = item.get("value")
+        if v is None:
+            continue
+        if type(v) is not dict:
+            raise _Slow
+        if len(v) == 1:
+            (kind, x), = v.items()
+            if kind == "stringValue" and type(x) is str:
+                kv.value.string_value = x
+                continue
+            if kind == "boolValue" and type(x) is bool:
+                kv.value.bool_value = x
+                continue
+            if kind == "intValue":
+                kv.value.int_value = _int(x)
+                continue
+            if kind == "doubleValue":
+                kv.value.double_value = _float(x)
+                continue
+        kv.value.SetInParent()  # an empty value object is still a present value
+        json_format.ParseDict(v, kv.value, ignore_unknown_fields=True)  # arrays, key-value lists, bytes
+
+
+def _str(v: Any) -> str:
+    if type(v) is str:
+        return v
+    raise _Slow
+
+
+def _point_common(p: Any, d: dict) -> None:
+    _attrs_into(p.attributes, _arr(d, "attributes"))
+    if "startTimeUnixNano" in d:
+        p.start_time_unix_nano = _int(d["startTimeUnixNano"])
+    if "timeUnixNano" in d:
+        p.time_unix_nano = _int(d["timeUnixNano"])
+    if "flags" in d:
+        p.flags = _int(d["flags"])
+
+
+def _fast_json_request(obj: dict) -> ExportMetricsServiceRequest:
+    """Build the request from OTLP/JSON, filling only the fields the decoder reads.
+
+    Covers what senders write in practice; anything else raises :class:`_Slow` and the
+    caller uses the general ``json_format`` parser, which is the reference (and about
+    five times slower).
+    """
+    req = ExportMetricsServiceRequest()
+    for rmd in _arr(_obj(obj, _K_REQ), "resourceMetrics"):
+        rm = req.resource_metrics.add()
+        _obj(rmd, _K_RM)
+        if "resource" in rmd:
+            rm.resource.SetInParent()
+            _attrs_into(rm.resource.attributes, _arr(_obj(rmd["resource"], _K_RES), "attributes"))
+        for smd in _arr(rmd, "scopeMetrics"):
+            sm = rm.scope_metrics.add()
+            _obj(smd, _K_SM)
+            if "scope" in smd:
+                sc = _obj(smd["scope"], _K_SCOPE)
+                sm.scope.SetInParent()
+                sm.scope.name = _str(sc.get("name", ""))
+                sm.scope.version = _str(sc.get("version", ""))
+                _attrs_into(sm.scope.attributes, _arr(sc, "attributes"))
+            for md in _arr(smd, "metrics"):
+                _obj(md, _K_METRIC)
+                m = sm.metrics.add(name=_str(md.get("name", "")))
+                kinds = [k for k in _DATA_KEYS if k in md]
+                if len(kinds) != 1:
+                    if kinds:
+                        raise _Slow  # two kinds in one metric: let the general parser object
+                    continue
+                kind = kinds[0]
+                dd = _obj(md[kind], _K_DATA)
+                if kind == "gauge":
+                    data = m.gauge
+                elif kind == "sum":
+                    data = m.sum
+                    if "isMonotonic" in dd:
+                        if type(dd["isMonotonic"]) is not bool:
+                            raise _Slow
+                        data.is_monotonic = dd["isMonotonic"]
+                elif kind == "histogram":
+                    data = m.histogram
+                elif kind == "exponentialHistogram":
+                    data = m.exponential_histogram
+                else:
+                    data = m.summary
+                if kind != "gauge" and kind != "summary" and "aggregationTemporality" in dd:
+                    t = dd["aggregationTemporality"]
+                    if type(t) is not int:
+                        raise _Slow  # an enum name: the general parser maps it
+                    data.aggregation_temporality = t
+                if kind == "gauge" or kind == "sum":
+                    data.SetInParent()
+                    for pd in _arr(dd, "dataPoints"):
+                        p = data.data_points.add()
+                        _point_common(p, _obj(pd, _K_NUM))
+                        if "asDouble" in pd:
+                            if "asInt" in pd:
+                                raise _Slow
+                            p.as_double = _float(pd["asDouble"])
+                        elif "asInt" in pd:
+                            p.as_int = _int(pd["asInt"])
+                elif kind == "histogram":
+                    data.SetInParent()
+                    for pd in _arr(dd, "dataPoints"):
+                        p = data.data_points.add()
+                        _point_common(p, _obj(pd, _K_HIST))
+                        p.count = _int(pd.get("count", 0))
+                        if "sum" in pd:
+                            p.sum = _float(pd["sum"])
+                        p.bucket_counts.extend([_int(n) for n in _arr(pd, "bucketCounts")])
+                        p.explicit_bounds.extend([_float(b) for b in _arr(pd, "explicitBounds")])
+                elif kind == "exponentialHistogram":
+                    data.SetInParent()
+                    for pd in _arr(dd, "dataPoints"):
+                        p = data.data_points.add()
+                        _point_common(p, _obj(pd, _K_EXP))
+                        p.count = _int(pd.get("count", 0))
+                        if "sum" in pd:
+                            p.sum = _float(pd["sum"])
+                        p.scale = _int(pd.get("scale", 0))
+                        p.zero_count = _int(pd.get("zeroCount", 0))
+                        for side, buckets in (("positive", p.positive), ("negative", p.negative)):
+                            if side in pd:
+                                bd = _obj(pd[side], _K_BUCKETS)
+                                buckets.SetInParent()
+                                buckets.offset = _int(bd.get("offset", 0))
+                                buckets.bucket_counts.extend([_int(n) for n in _arr(bd, "bucketCounts")])
+                else:
+                    data.SetInParent()
+                    for pd in _arr(dd, "dataPoints"):
+                        p = data.data_points.add()
+                        _point_common(p, _obj(pd, _K_SUMMARY))
+                        p.count = _int(pd.get("count", 0))
+                        p.sum = _float(pd.get("sum", 0.0))
+                        for qd in _arr(pd, "quantileValues"):
+                            _obj(qd, _K_QV)
+                            p.quantile_values.add(quantile=_float(qd.get("quantile", 0.0)), value=_float(qd.get("value", 0.0)))
+    return req
 
 
 def _dicts(obj: Any, key: str) -> list:
@@ -433,7 +666,7 @@ class OtlpDecoder:
                 if value is not None and math.isfinite(value):
                     metrics[name] = value
             if metrics:
-                out.append((service, t_ns * _NS, metrics))
+                out.append((service, t_ns / _NS_PER_S, metrics))
         stats.events += len(out)
         return out
 
@@ -486,8 +719,11 @@ class OtlpDecoder:
                 elif kind == "q":
                     entry = ("q", start, t, int(count), _opt_float(total))
                 elif kind == "h":
-                    entry = ("h", start, t, int(count), _opt_float(total), dec._intern(tuple(float(b) for b in row[6])),
-                             tuple(int(n) for n in row[7]))
+                    bounds = tuple(float(b) for b in row[6])
+                    counts = tuple(int(n) for n in row[7])
+                    if counts and (len(counts) != len(bounds) + 1 or not _valid_bounds(bounds)):
+                        raise OtlpStateError(f"series {row[0]} has unusable bucket bounds")
+                    entry = ("h", start, t, int(count), _opt_float(total), dec._intern(bounds), counts)
                 elif kind == "e":
                     entry = ("e", start, t, int(count), _opt_float(total), int(row[6]), int(row[7]),
                              (int(row[8]), tuple(int(n) for n in row[9])), (int(row[10]), tuple(int(n) for n in row[11])))
@@ -518,6 +754,10 @@ class OtlpDecoder:
         if type(obj) is not dict:
             raise Rejected("otlp_invalid", f"expected a JSON object, got {type(obj).__name__}")
         _strip_exemplars(obj)
+        try:
+            return _fast_json_request(obj)
+        except (_Slow, ValueError, TypeError, OverflowError, json_format.ParseError):
+            pass  # the general parser below has the last word, errors included
         try:
             # Unknown keys are ignored, as OTLP/JSON receivers must do for newer senders.
             json_format.ParseDict(obj, req, ignore_unknown_fields=True)
@@ -596,7 +836,7 @@ class OtlpDecoder:
 
     def _time_ok(self, p: Any) -> int | None:
         t = p.time_unix_nano
-        ts = t * _NS
+        ts = t / _NS_PER_S
         if ts < MIN_EVENT_TS or ts > self._ceiling:
             self.stats.skipped["bad_time"] += 1
             return None
@@ -629,7 +869,7 @@ class OtlpDecoder:
             if v < 0:
                 skipped["negative_delta"] += 1
                 continue
-            self._add(events, service, res, t, name, "r", v / ((t - start) * _NS))
+            self._add(events, service, res, t, name, "r", v / ((t - start) / _NS_PER_S))
 
     def _cumulative_sum(self, service: str, res: bytes, prefix: bytes, name: str, points: Any, events: dict) -> None:
         skipped = self.stats.skipped
@@ -640,7 +880,7 @@ class OtlpDecoder:
             if v is None:
                 continue
             start = p.start_time_unix_nano
-            key = _digest(prefix, b"s", name_b, _canon(p.attributes))
+            key = _series_key(prefix, b"s", name_b, p.attributes)
             prev = series.get(key)
             if prev is not None and t <= prev[2]:
                 skipped["not_newer"] += 1
@@ -652,11 +892,11 @@ class OtlpDecoder:
             if start != prev[1] or v < prev[3]:
                 self.stats.resets += 1
                 if start and start < t:
-                    self._add(events, service, res, t, name, "r", v / ((t - start) * _NS))
+                    self._add(events, service, res, t, name, "r", v / ((t - start) / _NS_PER_S))
                 else:
                     skipped["first_point"] += 1
                 continue
-            self._add(events, service, res, t, name, "r", (v - prev[3]) / ((t - prev[2]) * _NS))
+            self._add(events, service, res, t, name, "r", (v - prev[3]) / ((t - prev[2]) / _NS_PER_S))
 
     def _histogram_point(self, service: str, res: bytes, prefix: bytes, name: str, p: Any, explicit: bool,
                          cumulative: bool, events: dict) -> None:
@@ -682,7 +922,7 @@ class OtlpDecoder:
         if not cumulative:
             self._add_histogram(events, service, res, t, name, count, total, explicit, layout)
             return
-        key = _digest(prefix, b"h" if explicit else b"e", name.encode(), _canon(p.attributes))
+        key = _series_key(prefix, b"h" if explicit else b"e", name.encode(), p.attributes)
         if explicit:
             entry: tuple = ("h", start, t, count, total, layout[0], layout[1])
         else:
@@ -714,9 +954,12 @@ class OtlpDecoder:
         if not counts:
             return ((), ())
         bounds = tuple(p.explicit_bounds)
-        if len(counts) != len(bounds) + 1 or not all(math.isfinite(b) for b in bounds):
+        if len(counts) != len(bounds) + 1:
             return False
-        if any(b >= c for b, c in zip(bounds, bounds[1:])):
+        known = self._bounds.get(bounds)
+        if known is not None:
+            return known, counts
+        if not _valid_bounds(bounds):
             return False
         return self._intern(bounds), counts
 
@@ -751,7 +994,7 @@ class OtlpDecoder:
         count = p.count
         total = p.sum if math.isfinite(p.sum) else None
         start = p.start_time_unix_nano
-        key = _digest(prefix, b"q", name.encode(), _canon(p.attributes))
+        key = _series_key(prefix, b"q", name.encode(), p.attributes)
         prev = self._series.get(key)
         if prev is not None and t <= prev[2]:
             skipped["not_newer"] += 1
@@ -790,7 +1033,7 @@ class OtlpDecoder:
         """Fold one value into feature ``name`` of the event (resource, t).
 
         kinds: "g" gauge [sum, n] -> mean; "r" rate [sum] -> sum; "n" count -> sum;
-        "m" mean [sum, count] -> sum / count; "s" segments [list] -> quantile.
+        "m" mean [sum, count] -> sum / count; "s" buckets -> quantile (see :meth:`_add_buckets`).
         """
         ev = events.get((res, t))
         if ev is None:
@@ -804,7 +1047,8 @@ class OtlpDecoder:
             if kind == "g" or kind == "m":
                 feats[name] = [kind, a, 1 if kind == "g" else b]
             elif kind == "s":
-                feats[name] = [kind, list(a)]
+                feats[name] = [kind, {}, []]
+                self._add_buckets(feats[name], a, b)
             else:
                 feats[name] = [kind, a]
             return
@@ -818,9 +1062,27 @@ class OtlpDecoder:
             acc[1] += a
             acc[2] += b
         elif kind == "s":
-            acc[1].extend(a)
+            self._add_buckets(acc, a, b)
         else:
             acc[1] += a
+
+    @staticmethod
+    def _add_buckets(acc: list, bounds: tuple | None, buckets: Sequence) -> None:
+        """acc = ["s", {bounds: summed counts}, [other segments]].
+
+        Explicit buckets with the same bounds (the usual case across attribute sets)
+        are summed as integers, so a single layout takes the exact walk in
+        :func:`_explicit_quantile`; exponential buckets arrive as segments.
+        """
+        if bounds is None:
+            acc[2].extend(buckets)
+            return
+        summed = acc[1].get(bounds)
+        if summed is None:
+            acc[1][bounds] = list(buckets)
+        else:
+            for k, n in enumerate(buckets):
+                summed[k] += n
 
     def _add_histogram(self, events: dict, service: str, res: bytes, t: int, name: str, count: int,
                        total: float | None, explicit: bool, layout: tuple | None) -> None:
@@ -831,14 +1093,14 @@ class OtlpDecoder:
             return
         if explicit:
             bounds, counts = layout
-            segments = _explicit_segments(bounds, counts) if counts and len(counts) > 1 else []
-        else:
-            segments = _exp_segments(*layout)
-            if segments is None:
-                self.stats.skipped["bad_histogram"] += 1
-                return
-        if segments:
-            self._add(events, service, res, t, f"{name}.{self.suffix}", "s", segments)
+            if len(counts) > 1 and any(counts):
+                self._add(events, service, res, t, f"{name}.{self.suffix}", "s", bounds, counts)
+            return
+        segments = _exp_segments(*layout)
+        if segments is None:
+            self.stats.skipped["bad_histogram"] += 1
+        elif segments:
+            self._add(events, service, res, t, f"{name}.{self.suffix}", "s", None, segments)
 
 
 def _finish(acc: list, q: float) -> float | None:
@@ -848,7 +1110,13 @@ def _finish(acc: list, q: float) -> float | None:
     if kind == "m":
         return acc[1] / acc[2] if acc[2] > 0 else None
     if kind == "s":
-        return histogram_quantile(acc[1], q)
+        layouts, segments = acc[1], acc[2]
+        if len(layouts) == 1 and not segments:
+            (bounds, counts), = layouts.items()
+            return _explicit_quantile(bounds, counts, q)
+        for bounds, counts in layouts.items():
+            segments.extend(_explicit_segments(bounds, counts))
+        return histogram_quantile(segments, q)
     return float(acc[1])
 
 

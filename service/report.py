@@ -39,6 +39,7 @@ Examples
 
 from __future__ import annotations
 
+import dataclasses
 import html
 import math
 import os
@@ -53,10 +54,11 @@ from pathlib import Path
 import numpy as np
 import orjson
 
-from service.backtest import IncidentResult, alert_onsets, match_incidents
+from service.backtest import IncidentResult, Onset, alert_onsets, match_incidents
 from service.decode import NativeDecoder, Rejected
 from service.errors import TidewatchError
-from service.labels import Label, read_labels
+from service.labels import read_labels
+from service.progress import Progress
 from service.timefmt import format_duration, format_rfc3339, parse_rfc3339
 
 __all__ = [
@@ -90,6 +92,7 @@ PALETTE: Mapping[str, str] = {
     "axis": "#555555",
 }
 
+_READ_HINT = 1 << 20  # bytes per batch when re-reading the input, as the replay reads it
 _GAP_FACTOR = 1.5  # consecutive windows further apart than this many lengths break a line
 _FALSE_ONSET_GRACE = 3  # windows after an incident's end in which an onset still counts as about it
 
@@ -105,6 +108,7 @@ class _Scored:
     anomalous: bool
     threshold: float
     warming_up: bool
+    contributors: tuple[str, ...]  # metrics of the top contributors, most deviating first
 
 
 def _score_row(msg: object, where: str) -> tuple[str, _Scored]:
@@ -118,6 +122,7 @@ def _score_row(msg: object, where: str) -> tuple[str, _Scored]:
         anomalous = bool(msg["anomalous"])
         threshold = float(msg.get("threshold", math.nan))
         warming = bool(msg.get("warming_up", False))
+        contributors = tuple(str(c["metric"]) for c in (msg.get("contributors") or ())[:3])
     except KeyError as exc:
         raise ReportError(f"{where}: the score message has no {exc.args[0]!r} field") from None
     except (TypeError, ValueError) as exc:
@@ -126,7 +131,7 @@ def _score_row(msg: object, where: str) -> tuple[str, _Scored]:
         raise ReportError(f"{where}: 'service' must be a non-empty string")
     if not (end > start and math.isfinite(score)):
         raise ReportError(f"{where}: window_end must be after window_start and score finite")
-    return service, _Scored(start, end, score, anomalous, threshold, warming)
+    return service, _Scored(start, end, score, anomalous, threshold, warming, contributors)
 
 
 def read_score_file(path: str | os.PathLike) -> list[dict]:
@@ -138,8 +143,8 @@ def read_score_file(path: str | os.PathLike) -> list[dict]:
     >>> try:
     ...     read_score_file(p)
     ... except ReportError as exc:
-    ...     print(str(exc).split(": ", 1)[1])
-    line 2: not JSON: unexpected character: line 1 column 1 (char 0)
+    ...     print(str(exc).split(": ")[1])
+    line 2
     """
     out = []
     try:
@@ -165,15 +170,16 @@ def _group_scores(scores: Iterable[Mapping]) -> dict[str, list[_Scored]]:
     return {svc: [rows[k] for k in sorted(rows)] for svc, rows in by_service.items()}
 
 
-def window_means(path: str | os.PathLike, windows: Mapping[str, float],
-                 decoder: NativeDecoder | None = None) -> Iterator[tuple[str, float, dict[str, float]]]:
+def window_means(path: str | os.PathLike, windows: Mapping[str, float], decoder: NativeDecoder | None = None,
+                 progress: Progress | None = None) -> Iterator[tuple[str, float, dict[str, float]]]:
     """Per-window means of each metric, recomputed from a native JSON-lines input file.
 
     Only services in ``windows`` (service -> window length in seconds) are read; windows are
     aligned to multiples of their length since the epoch, as the runtime aligns them. Lines
     the decoder rejects are skipped; unlike the runtime, late events are counted in (the
     plot shows what the service reported, not what arrived in time). Yields
-    ``(service, window_start, {metric: mean})`` in service, then time order.
+    ``(service, window_start, {metric: mean})`` in service, then time order. ``progress`` is
+    advanced by the bytes read, once per batch of lines.
 
     >>> import pathlib, tempfile
     >>> p = pathlib.Path(tempfile.mkdtemp()) / "in.jsonl"
@@ -187,25 +193,28 @@ def window_means(path: str | os.PathLike, windows: Mapping[str, float],
     sums: dict[tuple[str, float], dict[str, list[float]]] = {}
     try:
         with open(path, "rb") as fh:
-            for raw in fh:
-                try:
-                    service, ts, metrics = dec.decode(raw.rstrip(b"\r\n"))
-                except Rejected:
-                    continue
-                length = windows.get(service)
-                if length is None:
-                    continue
-                key = (service, ts - ts % length)
-                acc = sums.get(key)
-                if acc is None:
-                    acc = sums[key] = {}
-                for name, value in metrics.items():
-                    slot = acc.get(name)
-                    if slot is None:
-                        acc[name] = [float(value), 1.0]
-                    else:
-                        slot[0] += value
-                        slot[1] += 1.0
+            while batch := fh.readlines(_READ_HINT):
+                if progress is not None:
+                    progress.advance(sum(map(len, batch)))
+                for raw in batch:
+                    try:
+                        service, ts, metrics = dec.decode(raw.rstrip(b"\r\n"))
+                    except Rejected:
+                        continue
+                    length = windows.get(service)
+                    if length is None:
+                        continue
+                    key = (service, ts - ts % length)
+                    acc = sums.get(key)
+                    if acc is None:
+                        acc = sums[key] = {}
+                    for name, value in metrics.items():
+                        slot = acc.get(name)
+                        if slot is None:
+                            acc[name] = [float(value), 1.0]
+                        else:
+                            slot[0] += value
+                            slot[1] += 1.0
     except OSError as exc:
         raise ReportError(f"{os.fspath(path)}: cannot read the input file: {exc.strerror or exc}") from None
     for key in sorted(sums):
@@ -242,24 +251,36 @@ class ServiceSummary:
 
 def _as_backtest_rows(svc: str, rows: Sequence[_Scored]) -> list[dict]:
     # service.backtest reads score messages; only the fields it uses are rebuilt
-    return [{"service": svc, "window_start": format_rfc3339(r.start), "anomalous": r.anomalous} for r in rows]
+    return [{"service": svc, "window_start": format_rfc3339(r.start), "anomalous": r.anomalous,
+             "contributors": [{"metric": m} for m in r.contributors]} for r in rows]
 
 
 def _window_length(rows: Sequence[_Scored]) -> float:
     return statistics.median_low([r.end - r.start for r in rows])
 
 
-def _summaries(grouped: Mapping[str, Sequence[_Scored]], labels: Sequence[object] | None
-               ) -> tuple[list[ServiceSummary], list[IncidentResult]]:
+@dataclass(frozen=True, slots=True)
+class _Analysis:
+    """Everything the page is drawn from, computed once."""
+
+    grouped: Mapping[str, list[_Scored]]
+    labels: Sequence[object] | None
+    summaries: list[ServiceSummary]
+    results: list[IncidentResult]
+    onsets: Mapping[str, list[Onset]]
+
+
+def _analyse(grouped: Mapping[str, list[_Scored]], labels: Sequence[object] | None) -> _Analysis:
     out: list[ServiceSummary] = []
     results: list[IncidentResult] = []
+    onsets_by: dict[str, list[Onset]] = {}
     by_service: dict[str, list[object]] = defaultdict(list)
     for lab in labels or ():
         by_service[lab.service].append(lab)  # type: ignore[attr-defined]
     for svc, rows in grouped.items():
         msgs = _as_backtest_rows(svc, rows)
         window = _window_length(rows)
-        onsets = alert_onsets(msgs)
+        onsets = onsets_by[svc] = alert_onsets(msgs)
         row = ServiceSummary(
             service=svc, window=window, windows=len(rows), warming_up=sum(r.warming_up for r in rows),
             flagged=sum(r.anomalous for r in rows), onsets=len(onsets),
@@ -267,16 +288,15 @@ def _summaries(grouped: Mapping[str, Sequence[_Scored]], labels: Sequence[object
         if labels is not None:
             res, false = match_incidents(msgs, by_service.get(svc, []), window, grace=_FALSE_ONSET_GRACE)
             results.extend(res)
-            row = ServiceSummary(
-                **{**{f: getattr(row, f) for f in row.__slots__},  # type: ignore[attr-defined]
-                   "incidents": len(res), "caught": sum(r.caught for r in res),
-                   "delays": tuple(r.delay_windows for r in res if r.delay_windows is not None),
-                   "false_onsets": len(false)},
+            row = dataclasses.replace(
+                row, incidents=len(res), caught=sum(r.caught for r in res),
+                delays=tuple(r.delay_windows for r in res if r.delay_windows is not None),
+                false_onsets=len(false),
             )
         out.append(row)
     out.sort(key=lambda s: s.sort_key)
     results.sort(key=lambda r: (r.incident.start, r.incident.service))  # type: ignore[attr-defined]
-    return out, results
+    return _Analysis(grouped, labels, out, results, onsets_by)
 
 
 def summarize(scores: Iterable[Mapping], labels: Sequence[object] | None = None) -> list[ServiceSummary]:
@@ -291,7 +311,7 @@ def summarize(scores: Iterable[Mapping], labels: Sequence[object] | None = None)
     >>> summarize([w(0, True), w(1, False), w(2, True)], labels=[])[0].false_onsets
     2
     """
-    return _summaries(_group_scores(scores), labels)[0]
+    return _analyse(_group_scores(scores), labels).summaries
 
 
 # --------------------------------------------------------------------------- formatting
@@ -306,7 +326,7 @@ def _when(ts: float) -> str:
 
 
 def _span(seconds: float) -> str:
-    if seconds < 120:
+    if 0 < seconds < 60:
         return f"{seconds:.0f} s"
     if seconds < 5400:
         return f"{seconds / 60:.0f} min"
@@ -315,13 +335,17 @@ def _span(seconds: float) -> str:
     return f"{seconds / 86400:.1f} d"
 
 
+def _delay_one(windows: float, window: float) -> str:
+    return "at onset" if windows == 0 else _span(windows * window)
+
+
 def _delay_text(delays: Sequence[int], window: float) -> str:
+    """``at onset`` / ``25 min (5 w)`` for one incident; median and worst for several."""
     if not delays:
         return "–"
     if len(delays) == 1:
-        return f"{_span(delays[0] * window)} ({delays[0]} w)"
-    med = statistics.median(delays)
-    return f"median {_span(med * window)}, worst {_span(max(delays) * window)}"
+        return _delay_one(delays[0], window) + (f" ({delays[0]} w)" if delays[0] else "")
+    return f"median {_delay_one(statistics.median(delays), window)}, worst {_delay_one(max(delays), window)}"
 
 
 def _num(v: float) -> str:
@@ -348,7 +372,8 @@ def _e(text: object) -> str:
 _W = 1000
 _ML, _MR = 64, 14  # left room for y labels, right margin
 _PW = _W - _ML - _MR
-_LANE = 18  # incident lane above the score plot
+_LANE_ROW = 15  # one row of the incident lane above the score plot
+_CHAR_W = 7.6  # rough width of a lane label character, to keep labels from overlapping
 _SCORE_H = 150
 _METRIC_H = 58
 _AXIS_H = 34  # room for two-line UTC tick labels
@@ -382,12 +407,13 @@ def _time_axis(t0: float, t1: float, max_ticks: int = 9) -> _TimeAxis:
     return _TimeAxis(t0, t1, float(step), ticks)
 
 
-def _tick_text(t: float, step: float) -> tuple[str, str]:
+def _tick_text(t: float, step: float, first: bool) -> tuple[str, str]:
+    """Tick label: the time of day, and under it the date at midnight and at the first tick."""
     d = _utc(t)
     day = d.strftime("%a %d %b")
     if step >= 86400:
         return day, ""
-    return d.strftime("%H:%M"), (day if (d.hour, d.minute) == (0, 0) or t == t else "")
+    return d.strftime("%H:%M"), (day if first or (d.hour, d.minute) == (0, 0) else "")
 
 
 def _nice_ticks(lo: float, hi: float, n: int = 3) -> tuple[float, float, list[float]]:
@@ -410,7 +436,7 @@ def _thin(t: np.ndarray, y: np.ndarray, max_points: int, t0: float, t1: float) -
     n = t.size
     if n <= max_points:
         return np.arange(n)
-    buckets = max(1, max_points // 2)
+    buckets = max(1, (max_points - 2) // 2)  # two points per bucket, plus the first and the last
     b = np.minimum(((t - t0) / (t1 - t0) * buckets).astype(np.int64), buckets - 1)
     # sort by (bucket, value): the first and last of each bucket are its min and max
     order = np.lexsort((y, b))
@@ -424,8 +450,13 @@ def _thin(t: np.ndarray, y: np.ndarray, max_points: int, t0: float, t1: float) -
 def _path(xs: np.ndarray, ys: np.ndarray, breaks: np.ndarray) -> str:
     """An SVG path through the points, lifting the pen where ``breaks`` is True."""
     parts = []
+    n = xs.size
     for i, (x, y) in enumerate(zip(xs.tolist(), ys.tolist())):
-        parts.append(f"{'M' if i == 0 or breaks[i] else 'L'}{x:.1f} {y:.1f}")
+        if i == 0 or breaks[i]:
+            # a window alone between gaps is a zero-length stroke, drawn as a dot by the round cap
+            parts.append(f"M{x:.1f} {y:.1f}" + ("h0" if i + 1 == n or breaks[i + 1] else ""))
+        else:
+            parts.append(f"L{x:.1f} {y:.1f}")
     return "".join(parts)
 
 
@@ -467,13 +498,15 @@ def _vgrid(ax: _TimeAxis, top: float, bottom: float) -> str:
 
 def _xlabels(ax: _TimeAxis, y: float) -> str:
     out = []
-    for t in ax.ticks:
+    for i, t in enumerate(ax.ticks):
         x = ax.xs(t)
-        a, b = _tick_text(t, ax.step)
-        out.append(f'<text x="{x:.1f}" y="{y + 13}" text-anchor="middle">{_e(a)}</text>')
+        a, b = _tick_text(t, ax.step, i == 0)
+        # labels at the very edges are anchored inwards so they stay inside the plot's width
+        anchor = "start" if x - _ML < 30 else "end" if _ML + _PW - x < 30 else "middle"
+        out.append(f'<text x="{x:.1f}" y="{y + 13}" text-anchor="{anchor}">{_e(a)}</text>')
         if b and ax.step < 86400:
-            out.append(f'<text x="{x:.1f}" y="{y + 27}" text-anchor="middle" class="day">{_e(b)}</text>')
-    out.append(f'<text x="{_ML - 6}" y="{y + 13}" text-anchor="end" class="unit">UTC</text>')
+            out.append(f'<text x="{x:.1f}" y="{y + 27}" text-anchor="{anchor}" class="day">{_e(b)}</text>')
+    out.append(f'<text x="{_ML - 8}" y="{y + 13}" text-anchor="end" class="unit">UTC</text>')
     return "".join(out)
 
 
@@ -530,10 +563,42 @@ def _flag_spans(d: _ServiceData) -> list[tuple[float, float, str]]:
     return spans
 
 
+def _lane_layout(ax: _TimeAxis, incidents: Sequence[object]) -> list[tuple[object, float, float, int, float, str]]:
+    """Place each incident's bar and label in the first lane row where it overlaps nothing.
+
+    Returns ``(incident, x0, x1, row, label_x, label_anchor)``; the label goes right of the
+    bar, or left of it when there is no room before the plot's right edge.
+    """
+    placed: list[list[tuple[float, float]]] = []
+    out = []
+    for inc in sorted(incidents, key=lambda i: (i.start, i.end)):  # type: ignore[attr-defined]
+        a, b = max(inc.start, ax.t0), min(inc.end, ax.t1)  # type: ignore[attr-defined]
+        if b <= a:
+            continue
+        x0 = ax.xs(a)
+        x1 = max(ax.xs(b), x0 + 3.0)
+        width = _CHAR_W * len(getattr(inc, "kind", None) or "incident")
+        if x1 + 4 + width <= _ML + _PW:
+            extent, label_x, anchor = (x0, x1 + 4 + width), x1 + 4, "start"
+        else:
+            extent, label_x, anchor = (x0 - 4 - width, x1), x0 - 4, "end"
+        for row, items in enumerate(placed):
+            if all(extent[0] > hi + 6 or extent[1] < lo - 6 for lo, hi in items):
+                items.append(extent)
+                break
+        else:
+            row = len(placed)
+            placed.append([extent])
+        out.append((inc, x0, x1, row, label_x, anchor))
+    return out
+
+
 def _score_svg(d: _ServiceData, ax: _TimeAxis, max_points: int) -> str:
     rows = d.rows
     window = d.summary.window
-    y_top = _LANE + 8
+    lane = _lane_layout(ax, d.incidents)
+    lane_rows = max((item[3] for item in lane), default=-1) + 1
+    y_top = 8 + lane_rows * _LANE_ROW
     y_bot = y_top + _SCORE_H
     height = y_bot + _AXIS_H
     thresholds = [r.threshold for r in rows if math.isfinite(r.threshold)]
@@ -566,15 +631,12 @@ def _score_svg(d: _ServiceData, ax: _TimeAxis, max_points: int) -> str:
     # labelled incidents: a light band over the plot and a solid bar, with its kind, in the lane above
     inc_spans = [(inc.start, inc.end, _incident_tip(inc)) for inc in d.incidents]  # type: ignore[attr-defined]
     parts.append(_bands(ax, inc_spans, y_top, y_bot, PALETTE["incident"], 0.16))
-    parts.append(_bands(ax, inc_spans, 4, 4 + _LANE - 6, PALETTE["incident"], 1.0, min_w=3.0))
-    for inc in d.incidents:
-        x0, x1 = ax.xs(max(inc.start, ax.t0)), ax.xs(min(inc.end, ax.t1))  # type: ignore[attr-defined]
-        kind = getattr(inc, "kind", None) or "incident"
-        if x1 > x0:
-            anchor_x = min(x1 + 4, _ML + _PW - 4)
-            anchor = "start" if x1 + 4 + 7 * len(kind) < _ML + _PW else "end"
-            parts.append(f'<text x="{anchor_x if anchor == "start" else x0 - 4:.1f}" y="{4 + _LANE - 8}" '
-                         f'text-anchor="{anchor}" class="lane">{_e(kind)}</text>')
+    for inc, x0, x1, row, label_x, anchor in lane:
+        y = 5 + row * _LANE_ROW
+        parts.append(f'<rect x="{x0:.1f}" y="{y}" width="{x1 - x0:.1f}" height="{_LANE_ROW - 5}" '
+                     f'fill="{PALETTE["incident"]}"><title>{_e(_incident_tip(inc))}</title></rect>')
+        parts.append(f'<text x="{label_x:.1f}" y="{y + _LANE_ROW - 6}" text-anchor="{anchor}" class="lane">'
+                     f'{_e(getattr(inc, "kind", None) or "incident")}</text>')
     # flagged windows
     parts.append(_bands(ax, _flag_spans(d), y_top, y_bot, PALETTE["flagged"], 0.45))
     # threshold: a step line, since a config change may move it
@@ -618,8 +680,9 @@ def _metric_svg(d: _ServiceData, metric: str, ax: _TimeAxis, max_points: int, la
     parts = [
         f'<svg class="plot plot-metric" data-service="{_e(d.name)}" data-plot="metric" data-metric="{_e(metric)}" '
         f'viewBox="0 0 {_W} {height}" role="img" aria-label="{_e(f"window mean of {metric} for {d.name}")}">',
-        f'<text x="{_ML}" y="{_TITLE_H - 4}" class="title">{_e(metric)}</text>'
-        f'<text x="{_ML + 8 + 7.4 * len(metric):.1f}" y="{_TITLE_H - 4}" class="sub">window mean{_e(extra)}</text>',
+        # tspans flow after each other, so the subtitle never overlaps a long metric name
+        f'<text x="{_ML}" y="{_TITLE_H - 4}"><tspan class="title">{_e(metric)}</tspan>'
+        f'<tspan class="sub" dx="8">window mean{_e(extra)}</tspan></text>',
         f'<rect x="{_ML}" y="{y_top}" width="{_PW}" height="{_METRIC_H}" fill="#fff" stroke="{PALETTE["axis"]}" stroke-width="0.6"/>',
         _bands(ax, inc_spans, y_top, y_bot, PALETTE["incident"], 0.16),
         _bands(ax, flag_spans, y_top, y_bot, PALETTE["flagged"], 0.30),
@@ -653,6 +716,8 @@ p.meta { color: #555; margin: 0 0 16px; }
 .caution strong { color: #9a3a00; }
 table { border-collapse: collapse; width: 100%; background: #fff; font-size: 14px; }
 th, td { padding: 5px 8px; border-bottom: 1px solid #e4e4e0; text-align: right; vertical-align: top; }
+td { white-space: nowrap; }
+td.note { white-space: normal; min-width: 16em; }
 th { background: #ecece8; font-weight: 600; }
 th:first-child, td:first-child, td.text, th.text { text-align: left; }
 tbody tr:nth-child(even) { background: #fafaf8; }
@@ -664,11 +729,13 @@ section.service p { margin: 2px 0 8px; color: #444; }
 .key { display: flex; flex-wrap: wrap; gap: 6px 18px; font-size: 13px; color: #333; margin: 6px 0 2px; }
 .sw { display: inline-block; width: 22px; height: 11px; vertical-align: -1px; margin-right: 5px; border-radius: 2px; }
 .sw.line { height: 3px; vertical-align: 3px; }
-.sw.dash { height: 0; border-top: 2px dashed #D55E00; vertical-align: 3px; }
-svg.plot { display: block; width: 100%; height: auto; font-size: 12px; fill: #333; }
-svg.plot text.title { font-size: 13px; font-weight: 600; fill: #1d1d1d; }
-svg.plot text.sub, svg.plot text.unit, svg.plot text.day { fill: #666; }
-svg.plot text.lane { fill: #7a2d5e; font-size: 11.5px; font-weight: 600; }
+.sw.dash { height: 0; border-top: 3px dashed #D55E00; border-radius: 0; vertical-align: 3px; }
+/* below ~760 px the plots scroll sideways rather than shrink their text past legibility */
+.plots { overflow-x: auto; }
+svg.plot { display: block; width: 100%; min-width: 760px; height: auto; font-size: 13px; fill: #333; }
+svg.plot .title { font-size: 14px; font-weight: 600; fill: #1d1d1d; }
+svg.plot .sub, svg.plot .unit, svg.plot .day { fill: #666; }
+svg.plot text.lane { fill: #7a2d5e; font-size: 12.5px; font-weight: 600; }
 svg.plot text.note { fill: #555; font-style: italic; }
 svg.plot text.thr { fill: #a84300; font-weight: 600; }
 ul { margin: 6px 0; padding-left: 22px; }
@@ -690,8 +757,9 @@ def _key_html() -> str:
 
 
 def _summary_table(rows: Sequence[ServiceSummary], labelled: bool, plotted: set[str]) -> str:
-    head = ("<tr><th>Service</th><th>Window</th><th>Windows scored</th><th>Flagged windows</th>"
-            "<th>Alert onsets</th><th>Incidents caught</th><th>Detection delay</th><th>False alert onsets</th></tr>")
+    head = ("<tr><th>Service</th><th>Window</th><th>Windows scored</th><th>Flagged windows</th><th>Alert onsets</th>"
+            + ("<th>Incidents caught</th><th>Detection delay</th><th>False alert onsets</th>" if labelled else "")
+            + "</tr>")
     body = []
     for r in rows:
         name = f'<a href="#svc-{_e(_slug(r.service))}">{_e(r.service)}</a>' if r.service in plotted else _e(r.service)
@@ -700,7 +768,7 @@ def _summary_table(rows: Sequence[ServiceSummary], labelled: bool, plotted: set[
             miss = ' class="miss"' if r.incidents and r.caught < r.incidents else ""  # type: ignore[operator]
             cells = (f"<td{miss}>{caught}</td><td>{_delay_text(r.delays, r.window)}</td><td>{r.false_onsets}</td>")
         else:
-            cells = '<td colspan="3" class="text">no labels given</td>' if r is rows[0] else "<td></td><td></td><td></td>"
+            cells = ""
         body.append(f"<tr><td>{name}</td><td>{format_duration(r.window)}</td><td>{r.windows:,}</td>"
                     f"<td>{r.flagged:,}</td><td>{r.onsets:,}</td>{cells}</tr>")
     tot_w = sum(r.windows for r in rows)
@@ -714,7 +782,7 @@ def _summary_table(rows: Sequence[ServiceSummary], labelled: bool, plotted: set[
         delay = _delay_text(delays, windows.pop()) if len(windows) == 1 else "–"
         foot_inc = f"<td>{caught} of {inc}</td><td>{delay}</td><td>{sum(r.false_onsets or 0 for r in rows)}</td>"
     else:
-        foot_inc = "<td></td><td></td><td></td>"
+        foot_inc = ""
     foot = (f"<tr><td>all {len(rows)} services</td><td></td><td>{tot_w:,}</td><td>{tot_f:,}</td><td>{tot_o:,}</td>"
             f"{foot_inc}</tr>")
     return f'<table class="summary"><thead>{head}</thead><tbody>{"".join(body)}</tbody><tfoot>{foot}</tfoot></table>'
@@ -723,7 +791,7 @@ def _summary_table(rows: Sequence[ServiceSummary], labelled: bool, plotted: set[
 def _incident_table(results: Sequence[IncidentResult], unscored: Sequence[object],
                     windows: Mapping[str, float]) -> str:
     head = ("<tr><th>Service</th><th class=\"text\">Kind</th><th class=\"text\">Metric</th><th class=\"text\">Start (UTC)</th>"
-            "<th>Length</th><th>Caught</th><th>Delay</th><th>Metric named</th><th class=\"text\">Note</th></tr>")
+            "<th>Length</th><th>Caught</th><th>Delay</th><th><abbr title=\"the incident's metric was among the top 3 contributors of its first flagged window\">Metric in top 3</abbr></th><th class=\"text\">Note</th></tr>")
     body = []
     for r in results:
         inc = r.incident
@@ -739,12 +807,13 @@ def _incident_table(results: Sequence[IncidentResult], unscored: Sequence[object
 
 def _incident_row(inc: object, caught: str, delay: str, named: str, *, miss: bool) -> str:
     note = getattr(inc, "note", None) or getattr(inc, "description", None) or ""
+    cls = ' class="miss"' if miss else ""
     return (f"<tr><td>{_e(inc.service)}</td><td class=\"text\">{_e(getattr(inc, 'kind', None) or '–')}</td>"  # type: ignore[attr-defined]
             f"<td class=\"text\">{_e(getattr(inc, 'metric', None) or '–')}</td>"
             f"<td class=\"text\">{_e(_utc(inc.start).strftime('%a %d %b %H:%M'))}</td>"  # type: ignore[attr-defined]
             f"<td>{_span(inc.end - inc.start)}</td>"  # type: ignore[attr-defined]
-            f"<td{' class=\"miss\"' if miss else ''}>{caught}</td><td>{delay}</td><td>{named}</td>"
-            f"<td class=\"text\">{_e(note)}</td></tr>")
+            f"<td{cls}>{caught}</td><td>{delay}</td><td>{named}</td>"
+            f"<td class=\"text note\">{_e(note)}</td></tr>")
 
 
 def _slug(name: str) -> str:
@@ -840,10 +909,17 @@ def render_report(
     >>> r.plots, r.plotted, r.html.count('class="plot ')
     (2, ('api',), 2)
     """
+    return _render(_analyse(_group_scores(scores), labels), metrics=metrics, title=title, sources=sources,
+                   notes=notes, generated_at=generated_at, max_points=max_points, max_services=max_services,
+                   max_metrics=max_metrics)
+
+
+def _render(an: _Analysis, *, metrics: Iterable[tuple[str, float, Mapping[str, float]]] | None, title: str,
+            sources: Mapping[str, str] | None, notes: Sequence[str], generated_at: float | None,
+            max_points: int, max_services: int, max_metrics: int) -> Report:
     if max_points < 4 or max_services < 0 or max_metrics < 0:
         raise ReportError("max_points must be at least 4 and max_services, max_metrics non-negative")
-    grouped = _group_scores(scores)
-    summaries, results = _summaries(grouped, labels)
+    grouped, summaries, results, labels = an.grouped, an.summaries, an.results, an.labels
     plotted = [s.service for s in summaries[:max_services]]
     data = {s.service: _ServiceData(s.service, grouped[s.service], s) for s in summaries[:max_services]}
     unscored = [lab for lab in labels or () if lab.service not in grouped]  # type: ignore[attr-defined]
@@ -851,11 +927,9 @@ def render_report(
         if lab.service in data:  # type: ignore[attr-defined]
             data[lab.service].incidents.append(lab)  # type: ignore[attr-defined]
     for name, d in data.items():
-        for onset in alert_onsets(_as_backtest_rows(name, d.rows)):
+        for onset in an.onsets[name]:
             if onset.top_metric is not None:
                 d.onset_metrics[onset.top_metric] = d.onset_metrics.get(onset.top_metric, 0) + 1
-    # score-message contributors are not rebuilt above: count them from the raw rows instead
-    _count_onset_metrics(scores, data)
     omitted_metrics: dict[str, list[str]] = {}
     if metrics is not None:
         acc: dict[str, dict[str, tuple[list[float], list[float]]]] = defaultdict(dict)
@@ -906,7 +980,8 @@ def render_report(
         w(f'<p class="meta">{_e(note)}</p>')
     w("<h2>Summary</h2>")
     w('<p class="meta">Services that alerted most come first (alert onsets, then flagged windows).'
-      + ("" if labelled else " Give a labels file (<code>--labels</code>) to see which incidents were caught.") + "</p>")
+      + ("" if labelled else " No labels were given, so nothing here says which alerts were right: give a labels "
+         "file (<code>--labels</code>) to see which incidents were caught.") + "</p>")
     if summaries:
         w(_summary_table(summaries, labelled, set(plotted)))
     else:
@@ -939,6 +1014,7 @@ def render_report(
             facts.append(f"warm-up {s.warming_up} windows")
         w(f"<p>{_e(' · '.join(facts))}</p>")
         w(_key_html())
+        w('<div class="plots">')
         w(_score_svg(d, ax, max_points))
         plots += 1
         flag_spans = _flag_spans(d)
@@ -947,6 +1023,7 @@ def render_report(
         for i, metric in enumerate(names):
             w(_metric_svg(d, metric, ax, max_points, i == len(names) - 1, flag_spans, inc_spans))
             plots += 1
+        w("</div>")
         if name in omitted_metrics:
             w(f"<p>Not plotted (more than {max_metrics} metrics): {_e(', '.join(omitted_metrics[name]))}</p>")
         if metrics is not None and not names:
@@ -954,20 +1031,6 @@ def render_report(
         w("</section>")
     w("</main></body></html>\n")
     return Report("".join(out), tuple(summaries), tuple(results), tuple(plotted), plots)
-
-
-def _count_onset_metrics(scores: Iterable[Mapping], data: Mapping[str, _ServiceData]) -> None:
-    # alert_onsets reads the top contributor from the message itself; the rebuilt rows above
-    # carry none, so the counts are recomputed from the original messages when they are a list
-    if not isinstance(scores, Sequence):
-        return
-    for d in data.values():
-        d.onset_metrics.clear()
-    for onset in alert_onsets(sorted((m for m in scores if m.get("service") in data),
-                                     key=lambda m: (m["service"], m["window_start"]))):
-        if onset.top_metric is not None:
-            per = data[onset.service].onset_metrics
-            per[onset.top_metric] = per.get(onset.top_metric, 0) + 1
 
 
 def write_report(
@@ -979,6 +1042,7 @@ def write_report(
     labels: Sequence[object] | None = None,
     title: str = "tidewatch backtest report",
     generated_at: float | None = None,
+    progress: Progress | None = None,
     **options: int,
 ) -> Report:
     """Build the report from files and write it to ``path`` (atomically: temp file, then rename).
@@ -986,7 +1050,8 @@ def write_report(
     ``input_path`` is the replay's input (native JSON lines) for the metric plots; None or
     ``"-"`` leaves them out. Labels come from ``labels_path`` (see :mod:`service.labels`) or
     ``labels``. ``options`` are ``max_points``, ``max_services`` and ``max_metrics`` of
-    :func:`render_report`.
+    :func:`render_report`. ``progress`` (e.g. ``Progress.for_input(input_path, label="report")``)
+    is advanced while the input is read again, and finished at the end.
 
     >>> import pathlib, tempfile
     >>> d = pathlib.Path(tempfile.mkdtemp())
@@ -997,21 +1062,27 @@ def write_report(
     """
     if labels_path is not None:
         labels = read_labels(labels_path)
-    scores = read_score_file(scores_path)
+    opts = {"max_points": 1500, "max_services": 50, "max_metrics": 12}
+    unknown = set(options) - set(opts)
+    if unknown:
+        raise TypeError(f"write_report() got unexpected option(s): {', '.join(sorted(unknown))}")
+    opts.update(options)
+    an = _analyse(_group_scores(read_score_file(scores_path)), labels)
     sources = {"scores": os.fspath(scores_path)}
     notes: list[str] = []
     metrics = None
     if input_path is not None and os.fspath(input_path) != "-":
         sources = {"input": os.fspath(input_path), **sources}
-        grouped = _group_scores(scores)
-        order = _summaries(grouped, None)[0][: options.get("max_services", 50)]
-        metrics = window_means(input_path, {s.service: s.window for s in order})
+        shown = an.summaries[: opts["max_services"]]
+        metrics = window_means(input_path, {s.service: s.window for s in shown}, progress=progress)
     else:
         notes.append("Metric plots are left out: the input was not a file that could be read again.")
     if labels_path is not None:
         sources["labels"] = os.fspath(labels_path)
-    report = render_report(scores, metrics=metrics, labels=labels, title=title, sources=sources, notes=notes,
-                           generated_at=generated_at, **options)
+    report = _render(an, metrics=metrics, title=title, sources=sources, notes=notes, generated_at=generated_at,
+                     **opts)
+    if progress is not None and metrics is not None:
+        progress.finish()
     target = Path(path)
     tmp = target.with_name(f".{target.name}.tmp-{os.getpid()}")
     try:

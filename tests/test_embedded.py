@@ -209,3 +209,28 @@ def test_a_corrupt_checkpoint_is_reported_set_aside_and_replaced(tmp_path):
     assert "state_refused" in r.stderr
     assert list(state.glob("ckpt-*.twc.corrupt-*"))
     assert list(state.glob("ckpt-*.twc"))  # a fresh, intact checkpoint replaced it
+
+
+def test_replay_writes_a_report_with_labels(tmp_path):
+    from service.labels import write_labels
+    from service.scenario import generate
+
+    sc = generate(seed=5, days=3.0, services=3)
+    src, labels = tmp_path / "in.jsonl", tmp_path / "labels.csv"
+    sc.write_jsonl(src)
+    write_labels(labels, sc.incidents)
+    r = _cli("replay", str(src), "--output", str(tmp_path / "s.jsonl"), "--window", "5m",
+             "--report", str(tmp_path / "r.html"), "--labels", str(labels))
+    assert r.returncode == 0, r.stderr
+    html = (tmp_path / "r.html").read_text()
+    assert html.count("<svg") >= 3 and all(s in html for s in sc.services)
+
+
+def test_replay_refuses_a_report_without_an_output_file_and_a_bad_labels_file(tmp_path):
+    src = tmp_path / "in.jsonl"
+    write_stream(src, n=50)
+    assert _cli("replay", str(src), "--output", "-", "--report", str(tmp_path / "r.html")).returncode == 2
+    bad = tmp_path / "labels.csv"
+    bad.write_text("service,start,end\napi,yesterday,today\n")
+    r = _cli("replay", str(src), "--output", str(tmp_path / "s.jsonl"), "--labels", str(bad))
+    assert r.returncode == 2 and "line 2" in r.stderr

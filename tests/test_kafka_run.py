@@ -143,7 +143,7 @@ def test_unkeyed_input_through_the_repartition_topic_scores_like_keyed_input(kaf
     # here covers that skew; the keyed reference uses the same settings.
     # Small fetches and batches keep that skew to an hour or two of event time.
     cfg = write_config(tmp_path / "tw.toml", kafka_bootstrap, t, keyed=False, lateness="12h",
-                       extra_consumer={"max.partition.fetch.bytes": 16384, "fetch.max.bytes": 49152}, batch_size=200)
+                       extra_consumer={"max.partition.fetch.bytes": 16384}, batch_size=200)
     reference = _reference(cfg, data, tmp_path)
     produce_lines(kafka_bootstrap, t.input, lines, keyed=False, partitions=3)
     # Sentinels go through the repartition topic too; each closes the windows of the partition it lands on.

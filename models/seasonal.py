@@ -1,0 +1,505 @@
+"""Seasonal baseline: what each feature should be at this hour, and how far it is from that.
+
+Per feature the baseline keeps three predictions of the next window's value and picks, for every
+window, the one that has recently been the most accurate:
+
+0. *level*: an exponentially weighted mean of the feature (half-life ``half_life`` windows);
+1. *hour of day*: the mean of the feature at this hour of the day (24 slots), plus an
+   exponentially weighted offset that follows slow drift of the whole profile;
+2. *hour of week*: the same with 168 slots (hour and weekday, Monday first).
+
+Each prediction's accuracy is an EWMA of its absolute error (half-life ``4 * half_life``): the
+robust scale of a feature is ``1.2533 *`` the chosen prediction's mean absolute error (for a
+normal error, ``sigma = sqrt(pi / 2) * E|e|``; common practice), so it follows a range that
+drifts and a single outlier moves it far less than it would move a variance. A seasonal
+prediction is only a candidate once two full cycles have been seen (a pattern seen once may be a
+coincidence) and is chosen only when its error is at least 10 % below the simpler one's; a
+service without daily or weekly cycles therefore falls back to the level, and a service with
+them gets their benefit once they have shown up twice. Without window start times (``at=None``)
+only the level is used.
+
+Per window and feature the baseline reports three kinds of evidence, all on a standard-normal
+scale so they can be compared and squashed alike:
+
+* ``z`` -- deviation from the chosen prediction over the robust scale; converted with
+  :func:`~models.baseline.normal_equivalent` at the error EWMA's effective sample size, so a
+  young feature's chance deviations are not taken for incidents;
+* ``change`` -- the first difference from the previous window over its own robust scale;
+* ``stuck`` -- a value repeated exactly ``r`` windows in a row by a feature that rarely repeats:
+  with repeat rate ``q`` (an EWMA of "same as the previous window", with half a repeat of prior
+  evidence) the chance of the run is ``q ** r``, reported as the normal deviate of that tail
+  probability (0 when nothing repeats). A feature that often repeats (a counter that sits at 0)
+  gives little evidence.
+
+Scales have a floor of ``absolute_floor + relative_floor * |prediction|``; the message count
+(feature ``"count"``) also has the Poisson floor ``sqrt(prediction)``, because counts of events
+are at least that noisy (common practice) and a count that is nearly constant would otherwise
+turn one missing scrape into a huge deviation.
+
+Examples
+--------
+>>> from models.seasonal import SeasonalBaseline
+>>> base = SeasonalBaseline(half_life=24.0)
+>>> for i in range(200):
+...     base.learn_one({"latency_ms": 200.0 + (i % 7) - 3.0}, at=1772409600.0 + 300.0 * i)
+>>> ev = base.evidence_one({"latency_ms": 260.0}, at=1772409600.0 + 300.0 * 200)
+>>> round(ev["latency_ms"].expected, 1), round(ev["latency_ms"].z, 1)
+(199.9, 16.9)
+>>> round(base.score_one({"latency_ms": 201.0}, at=1772409600.0 + 300.0 * 200), 2)
+0.48
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+from statistics import NormalDist
+from typing import Any
+
+import numpy as np
+
+from models.base import split_features
+from models.baseline import Z_LIMIT, alpha_from_half_life, normal_equivalent
+from models.errors import CorruptState, SettingsError
+
+__all__ = ["Evidence", "SeasonalBaseline", "slots_of", "tail_deviate"]
+
+DAY_S = 86400.0
+WEEK_S = 7 * DAY_S
+_HOUR_S = 3600.0
+# 1970-01-01 was a Thursday; shifting by three days makes Monday 00:00 the first hour of the week.
+_MONDAY_SHIFT_S = 3 * DAY_S
+#: Cycles a seasonal profile must have seen before its prediction is a candidate.
+MIN_CYCLES = 2.0
+#: A more complex prediction must beat the simpler one's error by this factor to be chosen.
+PREFER_SIMPLER = 0.9
+#: sqrt(pi / 2): standard deviation of a normal error over its mean absolute value.
+MAD_TO_SD = math.sqrt(math.pi / 2.0)
+#: Half-life of the seasonal slot means, in cycles (days for the day profile, weeks for the week
+#: profile): recent cycles count most, but one odd day does not replace the profile.
+SLOT_HALF_LIFE_CYCLES = 3.0
+#: The scales (prediction error, first difference) and the repeat rate forget this many times more
+#: slowly than the level, so an incident lasting a few hours does not become "normal spread".
+SCALE_FACTOR = 4.0
+REPEAT_FACTOR = 16.0
+#: Only a feature that repeats its value in fewer than this share of windows can be "stuck": for
+#: one that often repeats (a counter that sits at 0), a long run is its normal behaviour.
+STUCK_MAX_RATE = 0.2
+_NORMAL = NormalDist()
+#: Per-feature tail: strengths above TAIL_LEVEL are "events"; a feature's chance of a strength
+#: ``s`` is ``max(P(|N(0,1)| > s), rate * exp(-(s - TAIL_LEVEL) / beta))`` with the event rate and
+#: mean excess learned per feature (an exponential tail over a fixed level). A feature whose
+#: deviations are routinely huge (a restart counter that is 0 but for deploys) learns a wide
+#: tail and stops alerting on every deploy; a quiet feature keeps the normal tail. The priors
+#: are the normal tail's own values, worth TAIL_PRIOR_WINDOWS windows and TAIL_PRIOR_EVENTS
+#: events, so a feature never seen to jump is judged as if normal.
+TAIL_LEVEL = 3.0
+GAUSS_RATE = math.erfc(3.0 / math.sqrt(2.0))  # 0.0027
+GAUSS_EXCESS = 0.33  # mean excess of |N(0,1)| over 3, about (1 / 3, the inverse Mills ratio's tail)
+TAIL_PRIOR_WINDOWS = 288.0
+TAIL_PRIOR_EVENTS = 2.0
+#: The tail statistics forget this many times more slowly than the level (rare events need a
+#: long memory: 64 * 24 windows is about five days of five-minute windows).
+TAIL_FACTOR = 64.0
+_N_PRED = 3
+
+
+def slots_of(at: float) -> tuple[int, int]:
+    """``(hour of day, hour of week)`` of a UTC epoch time; the week starts on Monday 00:00.
+
+    >>> slots_of(1772409600.0)          # 2026-03-02T00:00:00Z, a Monday
+    (0, 0)
+    >>> slots_of(1772409600.0 + 6 * 86400 + 23.5 * 3600)   # the Sunday after, 23:30
+    (23, 167)
+    """
+    hour = int((at % DAY_S) // _HOUR_S)
+    weekday = int(((at + _MONDAY_SHIFT_S) % WEEK_S) // DAY_S)
+    return hour, 24 * weekday + hour
+
+
+def tail_deviate(p: float) -> float:
+    """Normal deviate whose upper tail probability is ``p`` (0 for ``p >= 0.5``).
+
+    >>> round(tail_deviate(0.0013499), 2), tail_deviate(0.7)
+    (3.0, 0.0)
+    """
+    if p >= 0.5:
+        return 0.0
+    if p <= 1e-300:
+        return 37.5  # the deviate of the smallest positive double, about
+    return -_NORMAL.inv_cdf(p)
+
+
+@dataclass(slots=True)
+class Evidence:
+    """What the baseline says about one feature of one window."""
+
+    expected: float  #: the chosen prediction (NaN before the feature has been learned)
+    z: float  #: signed deviation from ``expected`` on the normal scale
+    change: float  #: signed first difference on the normal scale
+    stuck: float  #: >= 0, evidence that the value is stuck
+    scorable: bool  #: learned at least twice (a scale is known)
+    p: float = 1.0  #: this feature's tail probability of ``strength`` (see :meth:`SeasonalBaseline.tail`)
+
+    @property
+    def strength(self) -> float:
+        """The largest of ``|z|`` and ``stuck``: how unusual this feature is on its own."""
+        return max(abs(self.z), self.stuck)
+
+
+class SeasonalBaseline:
+    """Level, hour-of-day and hour-of-week predictions per feature (see the module docstring).
+
+    Parameters
+    ----------
+    half_life
+        Half-life of the level and of the profiles' offsets, in windows.
+    absolute_floor, relative_floor
+        Floor of every scale: ``absolute_floor + relative_floor * |prediction|``.
+    """
+
+    _FLOATS = ("level", "lw", "off_day", "off_week", "err0", "err1", "err2", "ew", "ew2",
+               "dscale", "dw", "rep", "repw", "last", "xr", "xw", "xn", "xe")
+    _INTS = ("count", "run")
+
+    __slots__ = ("half_life", "alpha", "absolute_floor", "relative_floor", "_names", "_index",
+                 "_f", "_i", "_day", "_day_n", "_week", "_week_n", "first_at", "step")
+
+    def __init__(self, half_life: float = 24.0, *, absolute_floor: float = 1e-9,
+                 relative_floor: float = 1e-3) -> None:
+        self.alpha = alpha_from_half_life(half_life)
+        self.half_life = float(half_life)
+        if not (math.isfinite(absolute_floor) and absolute_floor > 0):
+            raise SettingsError(f"absolute_floor must be > 0, got {absolute_floor!r}")
+        if not (math.isfinite(relative_floor) and relative_floor >= 0):
+            raise SettingsError(f"relative_floor must be >= 0, got {relative_floor!r}")
+        self.absolute_floor = float(absolute_floor)
+        self.relative_floor = float(relative_floor)
+        self._names: list[str] = []
+        self._index: dict[str, int] = {}
+        self._f: dict[str, list[float]] = {k: [] for k in self._FLOATS}
+        self._i: dict[str, list[int]] = {k: [] for k in self._INTS}
+        # Profiles live in plain lists: per-element numpy access costs more than the arithmetic.
+        self._day: list[list[float]] = []
+        self._day_n: list[list[int]] = []
+        self._week: list[list[float]] = []
+        self._week_n: list[list[int]] = []
+        self.first_at: float = math.nan  # start of the first window seen with a time
+        self.step: float = math.nan  # smallest gap seen between window starts
+
+    @property
+    def features(self) -> tuple[str, ...]:
+        """Feature names known so far, in the order they were first seen."""
+        return tuple(self._names)
+
+    def locate(self, names: Sequence[str], *, add: bool = False) -> list[int]:
+        """Positions of ``names``; -1 for unknown ones unless ``add``."""
+        index, out = self._index, []
+        for name in names:
+            i = index.get(name, -1)
+            if i < 0 and add:
+                i = index[name] = len(self._names)
+                self._names.append(name)
+                for k in self._FLOATS:
+                    self._f[k].append(0.0)
+                for k in self._INTS:
+                    self._i[k].append(0)
+                self._day.append([0.0] * 24)
+                self._day_n.append([0] * 24)
+                self._week.append([0.0] * 168)
+                self._week_n.append([0] * 168)
+            out.append(i)
+        return out
+
+    # ------------------------------------------------------------------ time
+    def _cycles(self, at: float | None) -> tuple[bool, bool]:
+        """Whether the day and week profiles have seen enough cycles to predict."""
+        if at is None or math.isnan(self.first_at):
+            return False, False
+        span = at - self.first_at
+        return span >= MIN_CYCLES * DAY_S, span >= MIN_CYCLES * WEEK_S
+
+    def _slot_alpha(self, cycle_s: float) -> float:
+        # Visits per cycle from the window step (one visit per window in the slot's hour).
+        per_hour = 1.0 if not (self.step > 0.0) else max(1.0, _HOUR_S / self.step)
+        visits = SLOT_HALF_LIFE_CYCLES * per_hour * (cycle_s / DAY_S if cycle_s > DAY_S else 1.0)
+        return alpha_from_half_life(visits)
+
+    # ------------------------------------------------------------------ evidence
+    def compare(self, idx: Sequence[int], values: Sequence[float], at: float | None
+                ) -> list[Evidence]:
+        """Evidence for ``values`` at positions ``idx`` (from :meth:`locate`), before learning."""
+        out: list[Evidence] = []
+        f, ints = self._f, self._i
+        level, off_d, off_w = f["level"], f["off_day"], f["off_week"]
+        err0, err1, err2, ew, ew2 = f["err0"], f["err1"], f["err2"], f["ew"], f["ew2"]
+        dscale, last, rep, repw = f["dscale"], f["last"], f["rep"], f["repw"]
+        count, run = ints["count"], ints["run"]
+        use_day, use_week = self._cycles(at)
+        if at is not None:
+            hour, how = slots_of(at)
+        floor_abs, floor_rel = self.absolute_floor, self.relative_floor
+        names = self._names
+        for i, x in zip(idx, values):
+            n = count[i]
+            if n == 0:
+                out.append(Evidence(math.nan, 0.0, 0.0, 0.0, False))
+                continue
+            preds = self._predictions(i, use_day, use_week, hour if at is not None else 0,
+                                      how if at is not None else 0)
+            best = self._best(i)
+            p = preds[best]
+            if n < 2:
+                out.append(Evidence(p, 0.0, 0.0, 0.0, False))
+                continue
+            floor = floor_abs + floor_rel * abs(p)
+            if names[i] == "count":
+                floor = max(floor, math.sqrt(abs(p)))
+            e = (err0, err1, err2)[best][i]
+            sd = max(MAD_TO_SD * e, floor)
+            share = ew2[i] / (ew[i] * ew[i])  # 1 / effective sample size of the error EWMA
+            t = (x - p) / sd
+            t = Z_LIMIT if t > Z_LIMIT else -Z_LIMIT if t < -Z_LIMIT else t
+            z = normal_equivalent(t / math.sqrt(1.0 + share), 1.0 / share - 1.0) if share < 1.0 else 0.0
+            dsd = max(MAD_TO_SD * dscale[i], floor)
+            c = (x - last[i]) / dsd
+            c = Z_LIMIT if c > Z_LIMIT else -Z_LIMIT if c < -Z_LIMIT else c
+            stuck = 0.0
+            if x == last[i]:
+                # Repeat rate with half a repeat of prior evidence; the run includes this window.
+                q = (rep[i] + 0.5) / (repw[i] + 1.0)
+                if q < STUCK_MAX_RATE:
+                    stuck = tail_deviate(q ** (run[i] + 1))
+            ev = Evidence(p, z, c, stuck, True)
+            ev.p = self._tail_p(i, ev.strength)
+            out.append(ev)
+        return out
+
+    def _tail_p(self, i: int, strength: float) -> float:
+        f = self._f
+        gauss = math.erfc(strength / math.sqrt(2.0))
+        rate = (f["xr"][i] + GAUSS_RATE * TAIL_PRIOR_WINDOWS) / (f["xw"][i] + TAIL_PRIOR_WINDOWS)
+        beta = (f["xe"][i] + GAUSS_EXCESS * TAIL_PRIOR_EVENTS) / (f["xn"][i] + TAIL_PRIOR_EVENTS)
+        return max(gauss, rate * math.exp(-max(0.0, strength - TAIL_LEVEL) / beta))
+
+    def learn_tail(self, idx: Sequence[int], strengths: Sequence[float]) -> None:
+        """Count one window in each feature's tail statistics (done by :meth:`update`; the
+        model also calls it for the first window of an alert, so an alert counts as one event)."""
+        f = self._f
+        k = 0.5 ** (1.0 / (TAIL_FACTOR * self.half_life))
+        xr, xw, xn, xe = f["xr"], f["xw"], f["xn"], f["xe"]
+        for i, st in zip(idx, strengths):
+            hit = st > TAIL_LEVEL
+            xr[i] = k * xr[i] + (1.0 if hit else 0.0)
+            xw[i] = k * xw[i] + 1.0
+            xn[i] = k * xn[i] + (1.0 if hit else 0.0)
+            xe[i] = k * xe[i] + (st - TAIL_LEVEL if hit else 0.0)
+
+    def _predictions(self, i: int, use_day: bool, use_week: bool, hour: int, how: int
+                     ) -> tuple[float, float, float]:
+        f = self._f
+        p0 = f["level"][i]
+        p1 = self._day[i][hour] + f["off_day"][i] if use_day and self._day_n[i][hour] else p0
+        p2 = self._week[i][how] + f["off_week"][i] if use_week and self._week_n[i][how] else p1
+        return p0, p1, p2
+
+    def _best(self, i: int) -> int:
+        f = self._f
+        e0, e1, e2 = f["err0"][i], f["err1"][i], f["err2"][i]
+        best, e = 0, e0
+        if e1 < PREFER_SIMPLER * e:
+            best, e = 1, e1
+        if e2 < PREFER_SIMPLER * e:
+            best = 2
+        return best
+
+    def residuals(self, idx: Sequence[int], values: Sequence[float], at: float | None
+                  ) -> list[tuple[float, float, float]]:
+        """``x - prediction`` for each of the three predictions (zeros for an unlearned feature)."""
+        use_day, use_week = self._cycles(at)
+        hour, how = slots_of(at) if at is not None else (0, 0)
+        out = []
+        for i, x in zip(idx, values):
+            if self._i["count"][i] == 0:
+                out.append((0.0, 0.0, 0.0))
+                continue
+            p0, p1, p2 = self._predictions(i, use_day, use_week, hour, how)
+            out.append((x - p0, x - p1, x - p2))
+        return out
+
+    def shift(self, idx: Sequence[int], offsets: Sequence[tuple[float, float, float]]) -> None:
+        """Move each prediction of the features at ``idx`` by the given offsets.
+
+        Used when a level shift has persisted: the shifted baseline predicts the new level
+        straight away, while its scales and profile shapes are kept.
+        """
+        f = self._f
+        for i, (d0, d1, d2) in zip(idx, offsets):
+            f["level"][i] += d0
+            f["off_day"][i] += d1
+            f["off_week"][i] += d2
+
+    # ------------------------------------------------------------------ learning
+    def update(self, idx: Sequence[int], values: Sequence[float], at: float | None, *,
+               learn: bool = True, strengths: Sequence[float] | None = None) -> None:
+        """Learn ``values`` at distinct positions ``idx``.
+
+        With ``learn=False`` only the previous value and the repeat run are updated (the change
+        and stuck evidence need consecutive values even while learning is frozen).
+        ``strengths`` (from :meth:`compare`, same order) feed the per-feature tail statistics.
+        """
+        f, ints = self._f, self._i
+        last, run = f["last"], ints["run"]
+        if not learn:
+            for i, x in zip(idx, values):
+                if ints["count"][i]:
+                    run[i] = run[i] + 1 if x == last[i] else 0
+                last[i] = x
+            return
+        if strengths is not None:
+            self.learn_tail([i for i, st in zip(idx, strengths) if st >= 0.0],
+                            [st for st in strengths if st >= 0.0])
+        if at is not None:
+            if math.isnan(self.first_at):
+                self.first_at = at
+        use_day, use_week = self._cycles(at)
+        hour, how = slots_of(at) if at is not None else (0, 0)
+        a = self.alpha
+        keep = 1.0 - a
+        ks = 0.5 ** (1.0 / (SCALE_FACTOR * self.half_life))
+        kr = 0.5 ** (1.0 / (REPEAT_FACTOR * self.half_life))
+        a_day = self._slot_alpha(DAY_S) if at is not None else 0.0
+        a_week = self._slot_alpha(WEEK_S) if at is not None else 0.0
+        level, lw, off_d, off_w = f["level"], f["lw"], f["off_day"], f["off_week"]
+        errs = (f["err0"], f["err1"], f["err2"])
+        ew, ew2, dscale, dw, rep, repw = f["ew"], f["ew2"], f["dscale"], f["dw"], f["rep"], f["repw"]
+        count = ints["count"]
+        day, day_n, week, week_n = self._day, self._day_n, self._week, self._week_n
+        for i, x in zip(idx, values):
+            n = count[i]
+            if n == 0:
+                level[i], lw[i], last[i] = x, 1.0, x
+                if at is not None:
+                    day[i][hour], day_n[i][hour] = x, 1
+                    week[i][how], week_n[i][how] = x, 1
+                count[i] = 1
+                continue
+            preds = self._predictions(i, use_day, use_week, hour, how)
+            # Errors: normalised weights (a running mean at first, as pandas' adjust=True).
+            w = ks * ew[i] + 1.0
+            for k in range(_N_PRED):
+                errs[k][i] += (abs(x - preds[k]) - errs[k][i]) / w
+            ew[i], ew2[i] = w, ks * ks * ew2[i] + 1.0
+            wd = ks * dw[i] + 1.0
+            dscale[i] += (abs(x - last[i]) - dscale[i]) / wd
+            dw[i] = wd
+            same = 1.0 if x == last[i] else 0.0
+            rep[i] = kr * rep[i] + same
+            repw[i] = kr * repw[i] + 1.0
+            run[i] = run[i] + 1 if same else 0
+            last[i] = x
+            wl = keep * lw[i] + 1.0
+            level[i] += (x - level[i]) / wl
+            lw[i] = wl
+            if at is not None:
+                # Offsets follow the level's pace; each slot keeps a slowly forgetting mean.
+                row, rown = day[i], day_n[i]
+                nd = rown[hour]
+                if nd:
+                    off_d[i] += a * ((x - row[hour]) - off_d[i])
+                    row[hour] += max(a_day, 1.0 / (nd + 1)) * (x - row[hour])
+                else:
+                    row[hour] = x
+                rown[hour] = min(nd + 1, 65535)
+                row, rown = week[i], week_n[i]
+                nw = rown[how]
+                if nw:
+                    off_w[i] += a * ((x - row[how]) - off_w[i])
+                    row[how] += max(a_week, 1.0 / (nw + 1)) * (x - row[how])
+                else:
+                    row[how] = x
+                rown[how] = min(nw + 1, 65535)
+            count[i] = n + 1
+
+    def observe_step(self, gap: float) -> None:
+        """Record the gap between two consecutive window starts (the step is the smallest)."""
+        if gap > 0.0 and not (gap >= self.step):
+            self.step = gap
+
+    # ------------------------------------------------------------------ Scorer protocol
+    def learn_one(self, x: Mapping[str, float], at: float | None = None) -> None:
+        """Learn one window's features (non-finite values are skipped)."""
+        names, values = split_features(x)
+        idx = self.locate(names, add=True)
+        ev = self.compare(idx, values, at)
+        self.update(idx, values, at, strengths=[e.strength if e.scorable else -1.0 for e in ev])
+
+    def evidence_one(self, x: Mapping[str, float], at: float | None = None) -> dict[str, Evidence]:
+        """Evidence of every known feature of ``x``, without learning."""
+        names, values = split_features(x)
+        pairs = [(n, i, v) for n, i, v in zip(names, self.locate(names), values) if i >= 0]
+        ev = self.compare([i for _, i, _ in pairs], [v for _, _, v in pairs], at)
+        return {n: e for (n, _, _), e in zip(pairs, ev)}
+
+    def score_one(self, x: Mapping[str, float], at: float | None = None) -> float:
+        """Normal deviate of the smallest per-feature tail probability among the known features
+        of ``x`` (:attr:`Evidence.p`, two-sided); 0.0 if none is scorable."""
+        ps = [e.p for e in self.evidence_one(x, at).values() if e.scorable]
+        return tail_deviate(0.5 * min(ps)) if ps else 0.0
+
+    # ------------------------------------------------------------------ state
+    def to_state(self) -> dict[str, Any]:
+        """Plain-dict state (numpy arrays for the statistics)."""
+        state: dict[str, Any] = {
+            "half_life": self.half_life,
+            "absolute_floor": self.absolute_floor,
+            "relative_floor": self.relative_floor,
+            "names": list(self._names),
+            "times": np.array([self.first_at, self.step], dtype=np.float64),
+            "day": np.array(self._day, dtype=np.float64).reshape(-1, 24),
+            "day_n": np.array(self._day_n, dtype=np.uint16).reshape(-1, 24),
+            "week": np.array(self._week, dtype=np.float64).reshape(-1, 168),
+            "week_n": np.array(self._week_n, dtype=np.uint16).reshape(-1, 168),
+        }
+        for k in self._FLOATS:
+            state[k] = np.array(self._f[k], dtype=np.float64)
+        for k in self._INTS:
+            state[k] = np.array(self._i[k], dtype=np.int64)
+        return state
+
+    @classmethod
+    def from_state(cls, state: Mapping[str, Any]) -> SeasonalBaseline:
+        """Rebuild from :meth:`to_state` output; malformed states raise ``CorruptState``."""
+        try:
+            base = cls(state["half_life"], absolute_floor=state["absolute_floor"],
+                       relative_floor=state["relative_floor"])
+            names = list(state["names"])
+            if not all(isinstance(n, str) for n in names) or len(set(names)) != len(names):
+                raise CorruptState("baseline feature names must be distinct strings")
+            n = len(names)
+
+            def arr(key: str, shape: tuple[int, ...], dtype: Any) -> np.ndarray:
+                a = state[key]
+                if not isinstance(a, np.ndarray) or a.shape != shape or a.dtype != dtype:
+                    raise CorruptState(f"baseline {key!r} must be a {np.dtype(dtype)} array of {shape}")
+                return a
+
+            floats = {k: arr(k, (n,), np.float64).tolist() for k in cls._FLOATS}
+            ints = {k: arr(k, (n,), np.int64).tolist() for k in cls._INTS}
+            times = arr("times", (2,), np.float64).tolist()
+            day, day_n = arr("day", (n, 24), np.float64), arr("day_n", (n, 24), np.uint16)
+            week, week_n = arr("week", (n, 168), np.float64), arr("week_n", (n, 168), np.uint16)
+        except (KeyError, TypeError, ValueError, SettingsError) as exc:
+            raise CorruptState(f"malformed seasonal baseline state: {exc}") from exc
+        if not all(math.isfinite(v) for vs in floats.values() for v in vs) or any(
+                c < 0 for vs in ints.values() for c in vs) or not (
+                np.isfinite(day).all() and np.isfinite(week).all()):
+            raise CorruptState("baseline statistics must be finite and counts >= 0")
+        base._names = names
+        base._index = {name: i for i, name in enumerate(names)}
+        base._f, base._i = floats, ints
+        base._day, base._day_n = day.tolist(), day_n.tolist()
+        base._week, base._week_n = week.tolist(), week_n.tolist()
+        base.first_at, base.step = times
+        return base
