@@ -224,7 +224,7 @@ class ServiceModel:
                 if ready_t:
                     p_t = self._cal_trees.p_value(raw_t)
         if ready_b and ready_t:
-            p = min(1.0, 2.0 * min(p_b, p_t))
+            p = max(p_b, p_t)
         else:
             p = p_b if ready_b else p_t
         score = surprise_score(p)

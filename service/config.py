@@ -195,6 +195,11 @@ class KafkaConfig(_Frozen):
     input_keyed: bool = Field(
         True, description="True when producers key messages by service; false routes input through the repartition topic."
     )
+    repartition_alignment: Duration = Field(
+        5.0, ge=0,
+        description="With input_keyed false: input partitions further ahead in event time than the slowest by more than "
+        "this are paused, so re-keyed input interleaves in time order (keep lateness above it).",
+    )
     group_id: str = Field("tidewatch", min_length=1, description="Consumer group shared by every instance.")
     instance_id: str | None = Field(
         None, description="Stable per-instance name (default: the host name); the transactional id is derived from it."

@@ -57,8 +57,16 @@ class _AbortNeeded(Exception):
     """The transaction must be aborted and the work since the last commit redone."""
 
 
+class _Stopped(Exception):
+    """A stop was requested while restoring; nothing restored half-way is used."""
+
+
+_CLIENT_LOG = logging.getLogger("tidewatch.librdkafka")
+
+
 def _common(k: KafkaConfig) -> dict[str, Any]:
-    conf: dict[str, Any] = {"bootstrap.servers": k.bootstrap_servers}
+    # librdkafka's own log lines go through our JSON logging instead of raw stderr.
+    conf: dict[str, Any] = {"bootstrap.servers": k.bootstrap_servers, "logger": _CLIENT_LOG}
     conf.update(k.properties)
     return conf
 
@@ -140,6 +148,9 @@ class KafkaRunner:
         self._abort_pending = False
         self.reloader = reloader
         self._closed_at: list[float] = []  # when each window scored in the open transaction closed
+        self._fwd_marks: dict[tuple[str, int], float] = {}  # unkeyed input: newest event time forwarded per partition
+        self._next_offset: dict[tuple[str, int], int] = {}
+        self._paused: set[tuple[str, int]] = set()
 
     # --- set-up ----------------------------------------------------------------------
     def _ensure_topics(self) -> None:
@@ -243,8 +254,9 @@ class KafkaRunner:
 
     def _begin(self) -> None:
         if not self.in_txn:
-            self._call(self.producer.begin_transaction)
+            # Marked first: if begin fails half-way, the rewind path aborts whatever is left open.
             self.in_txn = True
+            self._call(self.producer.begin_transaction)
 
     def _write_state(self) -> None:
         k = self.k
@@ -305,15 +317,29 @@ class KafkaRunner:
             if high >= 0:
                 lag[(topic, partition)] = max(0, high - offset)
 
-    def _abort_and_rewind(self) -> None:
-        if self.in_txn:
+    def _abort(self) -> None:
+        """Abort whatever transaction the producer may hold, retrying through broker outages."""
+        while True:
             try:
                 self.producer.abort_transaction(_CALL_TIMEOUT)
+                break
             except KafkaException as exc:
                 err = exc.args[0]
-                if isinstance(err, KafkaError) and err.fatal():
+                if not isinstance(err, KafkaError):
+                    raise
+                if err.fatal():
                     raise BusFatalError(f"fatal Kafka error while aborting: {err.str()}") from exc
-            self.in_txn = False
+                if err.code() == KafkaError._STATE:
+                    break  # no transaction in progress: nothing to abort
+                log.warning("abort not acknowledged yet; retrying", extra={"event": "txn_abort_retry", "error": err.str()})
+                time.sleep(0.5)
+        self.in_txn = False
+
+    def _abort_and_rewind(self) -> None:
+        self._abort()
+        if self._paused:
+            self.consumer.resume([TopicPartition(t, p) for t, p in self._paused])
+            self._paused.clear()
         self.pending_offsets.clear()
         self._closed_at.clear()
         parts = sorted(self.assigned)
@@ -331,6 +357,9 @@ class KafkaRunner:
         return f"{topic}:{partition}"
 
     def _drop(self, topic: str, partition: int) -> None:
+        self._fwd_marks.pop((topic, partition), None)
+        self._next_offset.pop((topic, partition), None)
+        self._paused.discard((topic, partition))
         self.engine.drop_source(self._source_id(topic, partition))
         self.stats.consumer_lag.pop((topic, partition), None)
         self.stats.high_marks.pop(self._source_id(topic, partition), None)
@@ -364,7 +393,16 @@ class KafkaRunner:
                     assignment.append(TopicPartition(k.changelog_topic, p, OFFSET_BEGINNING))
             if assignment:
                 restorer.assign(assignment)
+            next_note = time.monotonic() + 10.0
             while todo:
+                if self.stop.is_set():
+                    raise _Stopped()
+                if time.monotonic() > next_note:
+                    # read_committed stops at the first open transaction: a crashed instance's one
+                    # holds the changelog back until the broker aborts it (transaction.timeout.ms).
+                    log.info("still restoring; an open transaction may hold the changelog back",
+                             extra={"event": "restore_waiting", "partitions": sorted(todo)})
+                    next_note = time.monotonic() + 10.0
                 for msg in restorer.consume(num_messages=5000, timeout=0.5):
                     err = msg.error()
                     if err is not None:
@@ -375,8 +413,6 @@ class KafkaRunner:
                             raise BusFatalError(f"fatal error reading the changelog: {err.str()}")
                         continue
                     apply_record(states[msg.partition()], msg.key(), msg.value())
-                if self.stop.is_set() and not todo:
-                    break
         finally:
             restorer.close()
         n_models = 0
@@ -433,12 +469,7 @@ class KafkaRunner:
 
     def _on_lost(self, consumer: Consumer, partitions: list[TopicPartition]) -> None:
         # Another member may already own them: nothing of ours about them may be committed.
-        if self.in_txn:
-            try:
-                self.producer.abort_transaction(_CALL_TIMEOUT)
-            except KafkaException:
-                pass
-            self.in_txn = False
+        self._abort()
         for tp in partitions:
             self._drop(tp.topic, tp.partition)
             self.assigned.discard((tp.topic, tp.partition))
@@ -477,19 +508,56 @@ class KafkaRunner:
                 if src.high_mark != float("-inf"):
                     self.stats.high_marks[self._source_id(topic, partition)] = src.high_mark
             self.pending_offsets[(topic, partition)] = run[-1].offset() + 1
+            self._next_offset[(topic, partition)] = run[-1].offset() + 1
             i = j
 
     def _forward(self, run: list) -> None:
         """Unkeyed input: validate, then re-key by service onto the repartition topic."""
         decode = self.engine.decoder.decode
+        mark = self._fwd_marks.get((run[0].topic(), run[0].partition()), float("-inf"))
         for m in run:
             raw = m.value() or b""
             try:
-                service, _ts, _metrics = decode(raw)
+                service, ts, _metrics = decode(raw)
             except Rejected as r:
                 self.engine.reject(r.code, r.detail, raw, (m.topic(), m.partition(), m.offset()))
                 continue
+            if ts > mark:
+                mark = ts
             self._produce(self.k.repartition_topic, raw, key=service.encode("utf-8"))
+        self._fwd_marks[(run[0].topic(), run[0].partition())] = mark
+
+    def _align(self) -> None:
+        """Pause input partitions that run ahead in event time; resume them when the others catch up.
+
+        Re-keying merges every input partition into each repartition partition. Read from a backlog, one
+        input partition can be hours ahead of another, and the merged stream would make the slower one's
+        events late. Keeping partitions within ``repartition_alignment`` of the slowest busy one keeps the
+        merged order close to event-time order. A partition read up to its log end is idle and holds no
+        one back.
+        """
+        parts = [tp for tp in self.assigned if tp[0] in self.forward_topics]
+        if len(parts) < 2:
+            return
+        busy: list[tuple[float, tuple[str, int]]] = []
+        for tp in parts:
+            try:
+                _low, high = self.consumer.get_watermark_offsets(TopicPartition(*tp), cached=True)
+            except KafkaException:
+                high = -1
+            position = self._next_offset.get(tp, 0)
+            if high >= 0 and position < high:
+                busy.append((self._fwd_marks.get(tp, float("-inf")), tp))
+        limit = (min(m for m, _ in busy) + self.k.repartition_alignment) if busy else float("inf")
+        pause = [tp for m, tp in busy if m > limit and tp not in self._paused]
+        resume = [tp for tp in self._paused if tp not in dict((t, m) for m, t in busy) or
+                  self._fwd_marks.get(tp, float("-inf")) <= limit]
+        if pause:
+            self.consumer.pause([TopicPartition(t, p) for t, p in pause])
+            self._paused.update(pause)
+        if resume:
+            self.consumer.resume([TopicPartition(t, p) for t, p in resume])
+            self._paused.difference_update(resume)
 
     def run(self) -> None:
         k = self.k
@@ -524,6 +592,8 @@ class KafkaRunner:
                 try:
                     if msgs:
                         self._process(msgs)
+                    if self.forward_topics:
+                        self._align()
                     self.producer.poll(0)
                 except _AbortNeeded as exc:
                     log.warning("transaction must abort; rewinding", extra={"event": "txn_abort", "error": str(exc)})
@@ -533,6 +603,8 @@ class KafkaRunner:
                     self.commit()
                     next_commit = time.monotonic() + interval
             self.commit()
+        except _Stopped:
+            log.info("stopped while restoring state", extra={"event": "stopped_restoring"})
         finally:
             try:
                 # Leaves the group; the revoke callback commits anything still open.

@@ -744,7 +744,8 @@ _ANY_VALUE = st.one_of(
     _I64.map(lambda v: {"intValue": v}), _FLOAT.map(lambda v: {"doubleValue": v}),
     st.just({"bytesValue": "AAE="}), st.just({}), st.just({"arrayValue": {"values": [{"stringValue": "a"}]}}))
 _ATTRS = st.lists(st.fixed_dictionaries({"key": st.sampled_from(["service.name", "route", "zone"]), "value": _ANY_VALUE}), max_size=2)
-_COMMON = {"timeUnixNano": _U64, "startTimeUnixNano": _U64, "attributes": _ATTRS, "flags": st.integers(0, 3)}
+_TIME = st.integers(T0 - 3600 * S, T0 + 3600 * S).map(str) | _U64
+_COMMON = {"timeUnixNano": _TIME, "startTimeUnixNano": _TIME, "attributes": _ATTRS, "flags": st.integers(0, 3)}
 _POINTS = {
     "gauge": st.fixed_dictionaries({}, optional={**_COMMON, "asDouble": _FLOAT}),
     "sum": st.fixed_dictionaries({}, optional={**_COMMON, "asInt": _I64}),
@@ -762,7 +763,9 @@ _METRIC = st.one_of(*[
         {"dataPoints": st.lists(pts, max_size=2)}, optional={"aggregationTemporality": st.integers(0, 2), "isMonotonic": st.booleans()})})
     for kind, pts in _POINTS.items()])
 _PAYLOAD = st.fixed_dictionaries({"resourceMetrics": st.lists(st.fixed_dictionaries(
-    {"resource": st.fixed_dictionaries({"attributes": _ATTRS}),
+    {"resource": st.fixed_dictionaries({"attributes": st.builds(
+        lambda named, rest: named + rest,
+        st.lists(st.just({"key": "service.name", "value": {"stringValue": "ticket-api"}}), max_size=1), _ATTRS)}),
      "scopeMetrics": st.lists(st.fixed_dictionaries({"scope": st.fixed_dictionaries({"name": st.text(max_size=3)}),
                                                      "metrics": st.lists(_METRIC, min_size=1, max_size=2)}), max_size=1)}), max_size=1)})
 
