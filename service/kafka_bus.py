@@ -151,6 +151,8 @@ class KafkaRunner:
         self._fwd_marks: dict[tuple[str, int], float] = {}  # unkeyed input: newest event time forwarded per partition
         self._next_offset: dict[tuple[str, int], int] = {}
         self._paused: set[tuple[str, int]] = set()
+        self._call_started: float | None = None  # monotonic start of the transactional call under way
+        self._watch_stop = threading.Event()
 
     # --- set-up ----------------------------------------------------------------------
     def _ensure_topics(self) -> None:
@@ -245,12 +247,34 @@ class KafkaRunner:
     def _call(self, fn: Callable[[], T]) -> T:
         """Call a transactional API, retrying what is retriable."""
         while True:
+            self._call_started = time.monotonic()
             try:
                 return fn()
             except KafkaException as exc:
                 self._classify(exc)
                 log.warning("retriable Kafka error; retrying", extra={"event": "kafka_retry", "error": str(exc)})
                 time.sleep(0.2)
+            finally:
+                self._call_started = None
+
+    def _watch_calls(self) -> None:
+        """Nudge librdkafka when a transactional call outlives its timeout.
+
+        After the coordinator broker restarts, librdkafka (2.x) can leave a coordinator request waiting
+        for a broker state change that never comes, and the call then blocks past its timeout
+        (librdkafka issues 5456 and 5511). A metadata request from this thread makes the client
+        rediscover the broker, which re-drives the request. Runs in a daemon thread.
+        """
+        while not self._watch_stop.wait(5.0):
+            started = self._call_started
+            if started is None or time.monotonic() - started < _CALL_TIMEOUT + 5.0:
+                continue
+            log.warning("a transactional call outlived its timeout; refreshing metadata to re-drive it",
+                        extra={"event": "txn_call_stuck", "seconds": round(time.monotonic() - started, 1)})
+            try:
+                self.producer.list_topics(timeout=5.0)
+            except KafkaException:
+                pass
 
     def _begin(self) -> None:
         if not self.in_txn:
@@ -567,6 +591,8 @@ class KafkaRunner:
             self.consumer = Consumer(consumer_settings(k))
         except KafkaException as exc:
             raise ConfigError(f"[kafka] client settings refused by librdkafka: {exc.args[0].str()}") from exc
+        watchdog = threading.Thread(target=self._watch_calls, name="tidewatch-txn-watch", daemon=True)
+        watchdog.start()
         self._call(lambda: self.producer.init_transactions(_CALL_TIMEOUT))
         topics = sorted(self.scoring_topics | self.forward_topics)
         self.consumer.subscribe(topics, on_assign=self._on_assign, on_revoke=self._on_revoke, on_lost=self._on_lost)
@@ -613,5 +639,6 @@ class KafkaRunner:
                 log.warning("consumer close failed", extra={"event": "close_failed", "error": str(exc)})
             if server is not None:
                 server.stop()
+            self._watch_stop.set()
             self.producer.flush(10)
         log.info("stopped cleanly", extra={"event": "stopped", "windows": self.stats.windows_closed})

@@ -53,6 +53,16 @@ def test_rules_pass_promtool_check(promtool):
     assert proc.returncode == 0, proc.stdout.decode() + proc.stderr.decode()
 
 
+def test_prometheus_config_loads_the_rules(promtool):
+    # deploy/prometheus/prometheus.yml is what deploy/compose.yaml's Prometheus runs with
+    proc = _run([promtool, "check", "config", str(RULES_DIR / "prometheus.yml")])
+    out = proc.stdout.decode() + proc.stderr.decode()
+    assert proc.returncode == 0, out
+    assert RULES.name in out
+    doc = yaml.safe_load((RULES_DIR / "prometheus.yml").read_text())
+    assert [j["job_name"] for j in doc["scrape_configs"]] == ["tidewatch"]
+
+
 def test_rule_unit_tests_pass(promtool):
     proc = _run([promtool, "test", "rules", str(RULE_TESTS)])
     assert proc.returncode == 0, proc.stdout.decode() + proc.stderr.decode()

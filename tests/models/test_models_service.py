@@ -86,7 +86,7 @@ def test_seeded_runs_repeat_and_services_differ(kind: str) -> None:
     first = run(build_model("ticket-api", settings(kind, seed=3)), rows)
     again = run(build_model("ticket-api", settings(kind, seed=3)), rows)
     assert first == again
-    if kind != "adaptive_baseline":  # only the trees are random
+    if kind == "half_space_trees":  # only the trees are random, and only this kind scores with them
         other = run(build_model("ticket-api", settings(kind, seed=4)), rows)
         assert [r.raw for r in other] != [r.raw for r in first]
     assert service_seed("ticket-api", 3) == service_seed("ticket-api", 0) ^ 3
