@@ -113,15 +113,14 @@ class NativeDecoder:
         self.now = now
         self._ceiling = 0.0
         self._ceiling_at = -1e18
+        self.refresh_clock()
 
-    def _future_ceiling(self) -> float:
-        # Reading the wall clock per message costs; once a second is plenty for a
-        # skew measured in hours.
+    def refresh_clock(self) -> None:
+        """Read the wall clock for the future-skew check; the engine calls this once per batch
+        (reading the clock per message costs, and a skew limit is measured in hours)."""
         now = self.now()
-        if now - self._ceiling_at > 1.0:
-            self._ceiling_at = now
-            self._ceiling = now + self.max_future_skew
-        return self._ceiling
+        self._ceiling_at = now
+        self._ceiling = now + self.max_future_skew
 
     def decode(self, raw: bytes) -> tuple[str, float, dict]:
         if len(raw) > self.max_message_bytes:
@@ -159,7 +158,7 @@ class NativeDecoder:
                 ts = ts / 1000.0
         else:
             raise Rejected("bad_ts", f"'ts' must be a string or a number, got {tt.__name__}")
-        if ts < MIN_EVENT_TS or ts > self._future_ceiling():
+        if ts < MIN_EVENT_TS or ts > self._ceiling:
             raise Rejected("ts_out_of_range", f"'ts' {ts!r} is before 2000 or too far in the future")
 
         metrics = obj.get("metrics")

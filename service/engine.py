@@ -100,7 +100,9 @@ class Engine:
 
         ``origin_of(i)`` is called only for a rejected message, to say where it came from.
         """
+        self.decoder.refresh_clock()
         decode = self.decoder.decode
+        settings_cache = self.registry.resolved  # the dict itself: a reload clears it in place
         settings_of = self.registry.settings
         add = src.add
         owner = self.owner
@@ -119,7 +121,9 @@ class Engine:
                     # One service's state lives with one source; a second source would fork it.
                     self.reject("unaligned_key", f"service {service!r} already arrives on another partition", raw, origin_of(i))
                     continue
-            s = settings_of(service)
+            s = settings_cache.get(service)
+            if s is None:
+                s = settings_of(service)
             if not add(service, ts, metrics, s.window, s.lateness):
                 self.reject("late", f"event time {ts!r} is behind the watermark of service {service!r}", raw, origin_of(i))
                 continue

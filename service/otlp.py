@@ -50,11 +50,21 @@ How OTLP data becomes features (the choices, and why):
 - Points that cannot give a value are skipped and counted by reason
   (:data:`OTLP_SKIPS`, ``stats.skipped``); they never reject the payload.
 
-Cumulative series (resource + scope + metric name + point attributes, hashed) are
-remembered in a bounded LRU of ``max_series``; an evicted series starts over at its
-next point, like a new one. :meth:`~OtlpDecoder.to_state` and
-:meth:`~OtlpDecoder.from_state` carry that memory across a restart. A rejected
-payload never changes it.
+Cumulative series are remembered in a bounded LRU of ``max_series``; an evicted
+series starts over at its next point, like a new one. A series is the full resource
+(every attribute, not only the service: replicas keep separate counters), the scope,
+the metric name and the point attributes, hashed; this is the time-series identity
+of the OpenTelemetry data model. :meth:`~OtlpDecoder.to_state` and
+:meth:`~OtlpDecoder.from_state` carry that memory across a restart; a rejected
+payload never changes it, and a point not newer than its series' last one (a
+redelivered message) is skipped, so replaying from a committed offset is harmless.
+
+Parsing: ``otlp_proto`` goes to protobuf. For ``otlp_json`` exemplars (the only
+place hex ids occur) are dropped, then a fast reader builds the request from the
+shapes senders write; whatever it does not know (an enum written as its name,
+``"NaN"`` as text, a snake_case key, a field newer than this code) goes to
+protobuf's general ``json_format`` parser, which also has the last word on what is
+invalid.
 
 >>> from opentelemetry.proto.collector.metrics.v1.metrics_service_pb2 import ExportMetricsServiceRequest
 >>> req = ExportMetricsServiceRequest()

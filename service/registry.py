@@ -19,14 +19,14 @@ class ModelRegistry:
     def __init__(self, config: Config, stats: RuntimeStats) -> None:
         self.config = config
         self.stats = stats
-        self._settings: dict[str, ServiceSettings] = {}
+        self.resolved: dict[str, ServiceSettings] = {}  # service -> settings, filled on first sight
         self.models: dict[str, ServiceModel] = {}
         self.dirty: set[str] = set()
 
     def settings(self, service: str) -> ServiceSettings:
-        s = self._settings.get(service)
+        s = self.resolved.get(service)
         if s is None:
-            s = self._settings[service] = resolve(self.config, service)
+            s = self.resolved[service] = resolve(self.config, service)
         return s
 
     def model(self, service: str) -> ServiceModel:
@@ -40,7 +40,7 @@ class ModelRegistry:
         """Take a new config: later windows use the new rules; a model whose kind or parameters
         changed is rebuilt (fresh, it learns again), every other model is kept. Returns (kept, rebuilt)."""
         self.config = config
-        self._settings.clear()
+        self.resolved.clear()
         kept = rebuilt = 0
         for service, model in list(self.models.items()):
             wanted = self.settings(service).model

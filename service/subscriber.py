@@ -62,6 +62,7 @@ tracker across restarts. :func:`main` is the command line.
 from __future__ import annotations
 
 import argparse
+import http.client
 import logging
 import math
 import os
@@ -466,9 +467,15 @@ class WebhookPoster:
         except urllib.error.HTTPError as exc:
             exc.close()
             return False, exc.code in self.RETRY_STATUS or exc.code >= 500, f"HTTP {exc.code}"
-        except (urllib.error.URLError, TimeoutError, ConnectionError, OSError) as exc:
+        except (urllib.error.URLError, TimeoutError, OSError) as exc:
             reason = getattr(exc, "reason", exc)
             return False, True, f"{type(reason).__name__}: {reason}"
+        except http.client.HTTPException as exc:
+            # The receiver answered something that is not HTTP (or hung up mid-answer): may pass.
+            return False, True, f"{type(exc).__name__}: {exc}"
+        except ValueError as exc:
+            # urllib refused the request itself (e.g. an unusable address): retrying cannot help.
+            return False, False, f"{type(exc).__name__}: {exc}"
 
     def send(self, notification: Notification) -> bool:
         delay = self.backoff

@@ -772,7 +772,7 @@ _PAYLOAD = st.fixed_dictionaries({"resourceMetrics": st.lists(st.fixed_dictionar
                                                      "metrics": st.lists(_METRIC, min_size=1, max_size=3)}), min_size=1, max_size=1)}), min_size=1, max_size=2)})
 
 
-@settings(max_examples=120, deadline=None, suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large])
+@settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large])
 @given(_PAYLOAD)
 def test_fast_json_reader_agrees_with_the_reference_or_hands_on(obj):
     # Reference: protobuf's json_format.ParseDict. The fast reader may give up (and the
@@ -785,7 +785,7 @@ def test_fast_json_reader_agrees_with_the_reference_or_hands_on(obj):
     assert fast == _parse_reference(raw)
 
 
-@settings(max_examples=120, deadline=None, suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large])
+@settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large])
 @given(_PAYLOAD)
 def test_both_encodings_of_one_request_give_the_same_events(obj):
     raw = orjson.dumps(obj)

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import io
+import socket
 import threading
 import time
 import uuid
@@ -312,6 +313,33 @@ def test_a_slow_receiver_times_out_and_is_counted(receiver):
     poster = WebhookPoster(r.url, timeout=0.2, retries=0, sleep=lambda s: None)
     assert poster.send(_one_notification()) is False
     assert poster.failed == 1
+
+
+def test_a_receiver_answering_garbage_is_retried_and_counted():
+    # A TCP listener that answers every connection with bytes that are not HTTP.
+    srv = socket.socket()
+    srv.bind(("127.0.0.1", 0))
+    srv.listen(8)
+    seen = []
+
+    def serve() -> None:
+        while True:
+            try:
+                conn, _ = srv.accept()
+            except OSError:
+                return
+            with conn:
+                conn.recv(65536)
+                seen.append(1)
+                conn.sendall(b"HELLO THERE\r\n\r\n")
+
+    threading.Thread(target=serve, daemon=True).start()
+    try:
+        poster = WebhookPoster(f"http://127.0.0.1:{srv.getsockname()[1]}/", retries=1, sleep=lambda s: None)
+        assert poster.send(_one_notification()) is False
+        assert (len(seen), poster.failed) == (2, 1)
+    finally:
+        srv.close()
 
 
 @pytest.mark.parametrize("url", ["file:///etc/passwd", "ftp://example.invalid/", "127.0.0.1:9000"])
