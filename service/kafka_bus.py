@@ -13,8 +13,11 @@ topic. On assignment the assigned partitions' services are restored from it
 open transaction is committed first; on loss it is aborted and the state dropped.
 When a transaction must be aborted, every assigned partition is rewound to its
 committed offset and its state restored from the changelog, so the work is redone
-exactly. Fatal errors (fenced producer and the like) raise :class:`BusFatalError`
-and the process exits non-zero so the orchestrator restarts it.
+exactly. A fenced producer (the broker bumps its epoch when it times out a
+transaction, for example during a broker outage) is re-initialised once and the
+work redone; fenced again within two minutes means another live process holds
+the id. That, and every other fatal error, raises :class:`BusFatalError` and the
+process exits non-zero so the orchestrator restarts it.
 
 When producers do not key input by service (``input_keyed = false``), input is
 first forwarded, in the same transactions, to an internal repartition topic keyed
@@ -55,6 +58,16 @@ _CALL_TIMEOUT = 30.0  # seconds for one transactional call before it is retried
 
 class _AbortNeeded(Exception):
     """The transaction must be aborted and the work since the last commit redone."""
+
+
+class _Fenced(_AbortNeeded):
+    """The producer was fenced: its epoch was bumped (a transaction timed out on the broker, or another
+    process took over this transactional id)."""
+
+
+_FENCED_CODES = frozenset({KafkaError._FENCED, KafkaError.PRODUCER_FENCED, KafkaError.INVALID_PRODUCER_EPOCH})
+# A producer fenced again this soon after being replaced means another live process holds the id.
+_REFENCE_WINDOW_S = 120.0
 
 
 class _Stopped(Exception):
@@ -152,6 +165,7 @@ class KafkaRunner:
         self._next_offset: dict[tuple[str, int], int] = {}
         self._paused: set[tuple[str, int]] = set()
         self._call_started: float | None = None  # monotonic start of the transactional call under way
+        self._replaced_at: float | None = None  # when the producer was last re-initialised after a fence
         self._watch_stop = threading.Event()
 
     # --- set-up ----------------------------------------------------------------------
@@ -237,6 +251,8 @@ class KafkaRunner:
         err = exc.args[0] if exc.args else None
         if isinstance(err, KafkaError):
             if err.fatal():
+                if err.code() in _FENCED_CODES:
+                    raise _Fenced(err.str()) from exc
                 raise BusFatalError(f"fatal Kafka error, exiting so the orchestrator restarts: {err.str()}") from exc
             if err.txn_requires_abort():
                 raise _AbortNeeded(err.str()) from exc
@@ -352,6 +368,8 @@ class KafkaRunner:
                 if not isinstance(err, KafkaError):
                     raise
                 if err.fatal():
+                    if err.code() in _FENCED_CODES:
+                        raise _Fenced(err.str()) from exc
                     raise BusFatalError(f"fatal Kafka error while aborting: {err.str()}") from exc
                 if err.code() == KafkaError._STATE:
                     break  # no transaction in progress: nothing to abort
@@ -359,8 +377,31 @@ class KafkaRunner:
                 time.sleep(0.5)
         self.in_txn = False
 
+    def _replace_producer(self, reason: str) -> None:
+        """Start a new transactional producer under the same id (what the orchestrator would do by
+        restarting us), unless this one was already replaced moments ago: then another live process
+        holds the id, and this one must go."""
+        now = time.monotonic()
+        if self._replaced_at is not None and now - self._replaced_at < _REFENCE_WINDOW_S:
+            raise BusFatalError(f"fenced again soon after re-initialising; another instance holds this "
+                                f"transactional id, exiting: {reason}")
+        self._replaced_at = now
+        log.error("producer fenced; re-initialising it and redoing the work since the last commit",
+                  extra={"event": "producer_replaced", "reason": reason})
+        old = self.producer
+        try:
+            old.purge()
+        except (KafkaException, RuntimeError):
+            pass
+        self.producer = Producer(producer_settings(self.k, self.instance))
+        self._call(lambda: self.producer.init_transactions(_CALL_TIMEOUT))
+        self.in_txn = False
+
     def _abort_and_rewind(self) -> None:
-        self._abort()
+        try:
+            self._abort()
+        except _Fenced as exc:
+            self._replace_producer(str(exc))
         if self._paused:
             self.consumer.resume([TopicPartition(t, p) for t, p in self._paused])
             self._paused.clear()
@@ -493,7 +534,10 @@ class KafkaRunner:
 
     def _on_lost(self, consumer: Consumer, partitions: list[TopicPartition]) -> None:
         # Another member may already own them: nothing of ours about them may be committed.
-        self._abort()
+        try:
+            self._abort()
+        except _Fenced as exc:
+            self._replace_producer(str(exc))
         for tp in partitions:
             self._drop(tp.topic, tp.partition)
             self.assigned.discard((tp.topic, tp.partition))

@@ -56,8 +56,8 @@ series starts over at its next point, like a new one. A series is the full resou
 the metric name and the point attributes, hashed; this is the time-series identity
 of the OpenTelemetry data model. :meth:`~OtlpDecoder.to_state` and
 :meth:`~OtlpDecoder.from_state` carry that memory across a restart; a rejected
-payload never changes it, and a point not newer than its series' last one (a
-redelivered message) is skipped, so replaying from a committed offset is harmless.
+payload never changes it, and a point not newer than its series' last one is
+skipped, so a redelivered message cannot count an increase twice.
 
 Parsing: ``otlp_proto`` goes to protobuf. For ``otlp_json`` exemplars (the only
 place hex ids occur) are dropped, then a fast reader builds the request from the
