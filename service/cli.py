@@ -5,7 +5,8 @@ Exit codes
 0  success
 1  runtime failure (an output or the state directory refused a write, input unreadable)
 2  usage error or invalid config
-3  fatal message-bus error (e.g. the producer was fenced); the orchestrator should restart
+3  fatal message-bus error (e.g. the producer was fenced twice); the orchestrator should restart
+75  (Kafka worker only) a client call stuck past its deadline; the supervising parent restarts the worker
 130  stopped by a second interrupt before a clean shutdown finished
 """
 
@@ -17,6 +18,7 @@ import os
 import signal
 import sys
 import threading
+import time
 from collections.abc import Sequence
 
 from service.config import Config, load_config
@@ -55,6 +57,61 @@ def _state_key() -> bytes | None:
     return value.encode() if value else None
 
 
+_WORKER_ENV = "TIDEWATCH_WORKER"
+
+
+def _die_with_parent() -> None:
+    # Linux: the worker gets SIGKILL when the supervisor dies, so a killed supervisor never leaves a
+    # worker behind that a restarted one would fence.
+    import ctypes
+
+    try:
+        ctypes.CDLL("libc.so.6", use_errno=True).prctl(1, signal.SIGKILL)  # PR_SET_PDEATHSIG
+    except OSError:
+        pass
+
+
+def _supervise() -> int:
+    """Run the Kafka worker as a child process; start it again when it exits to be restarted.
+
+    Only the worker's "restart me" exit (75: a client call stuck for good) is retried here, with a
+    back-off; every other exit code is passed on to the orchestrator. Signals are forwarded.
+    """
+    import subprocess
+
+    from service.kafka_bus import EXIT_STUCK
+
+    child: subprocess.Popen | None = None
+    stopping = False
+
+    def forward(signum: int, frame: object) -> None:
+        nonlocal stopping
+        if signum in (signal.SIGTERM, signal.SIGINT):
+            if stopping and child is not None:
+                child.kill()
+            stopping = True
+        if child is not None and child.poll() is None:
+            child.send_signal(signum)
+
+    for sig in (signal.SIGTERM, signal.SIGINT, signal.SIGHUP):
+        signal.signal(sig, forward)
+    backoff = 1.0
+    while True:
+        env = {**os.environ, _WORKER_ENV: "1"}
+        child = subprocess.Popen([sys.executable, "-m", "service.cli", *sys.argv[1:]], env=env,
+                                 preexec_fn=_die_with_parent)
+        started = time.monotonic()
+        code = child.wait()
+        if stopping or code != EXIT_STUCK:
+            return code if code >= 0 else EXIT_INTERRUPTED
+        if time.monotonic() - started > 300:
+            backoff = 1.0
+        log.warning("worker asked to be restarted; starting a new one",
+                    extra={"event": "worker_restart", "exit_code": code, "after_seconds": backoff})
+        time.sleep(backoff)
+        backoff = min(backoff * 2, 30.0)
+
+
 def cmd_run(args: argparse.Namespace) -> int:
     config = load_config(args.config)
     stop = threading.Event()
@@ -65,6 +122,8 @@ def cmd_run(args: argparse.Namespace) -> int:
     if args.input is None and config.kafka is not None:
         from service.kafka_bus import KafkaRunner
 
+        if os.environ.get(_WORKER_ENV) != "1" and not args.no_supervise:
+            return _supervise()
         KafkaRunner(config, stop, state_key=_state_key(), http_listen=args.listen, reloader=reloader).run()
         return EXIT_OK
 
@@ -161,6 +220,8 @@ def build_parser() -> argparse.ArgumentParser:
     r.add_argument("--state-dir", default=None, help="state directory (default: the config's state.dir)")
     r.add_argument("--follow", action="store_true", help="at the end of the input file, wait for more lines")
     r.add_argument("--listen", default=None, help="host:port for /metrics, /healthz, /readyz; '' turns it off")
+    r.add_argument("--no-supervise", action="store_true",
+                   help="Kafka: run the worker in this process instead of under a restarting parent")
     r.set_defaults(func=cmd_run)
 
     rp = sub.add_parser("replay", help="score a recorded file as fast as possible", epilog=EPILOG,

@@ -27,6 +27,7 @@ by service; the scoring stage reads that topic, so state stays partition-aligned
 from __future__ import annotations
 
 import logging
+import os
 import socket
 import threading
 import time
@@ -54,6 +55,9 @@ log = logging.getLogger("tidewatch.kafka")
 
 T = TypeVar("T")
 _CALL_TIMEOUT = 30.0  # seconds for one transactional call before it is retried
+# A call still blocked this long after it started will not return (see KafkaRunner._watch_calls).
+_STUCK_AFTER_S = _CALL_TIMEOUT + 15.0
+EXIT_STUCK = 75  # EX_TEMPFAIL: the supervisor restarts the worker
 
 
 class _AbortNeeded(Exception):
@@ -274,23 +278,23 @@ class KafkaRunner:
                 self._call_started = None
 
     def _watch_calls(self) -> None:
-        """Nudge librdkafka when a transactional call outlives its timeout.
+        """Leave the process when a transactional call outlives its timeout for good.
 
         After the coordinator broker restarts, librdkafka (2.x) can leave a coordinator request waiting
         for a broker state change that never comes, and the call then blocks past its timeout
-        (librdkafka issues 5456 and 5511). A metadata request from this thread makes the client
-        rediscover the broker, which re-drives the request. Runs in a daemon thread.
+        (librdkafka issues 5456 and 5511); nothing inside the process can unblock it. The open
+        transaction is never committed, so exiting is safe: the supervisor (``tidewatch run``'s parent
+        process) or the orchestrator starts a new worker, which fences this transactional id, aborts the
+        transaction and redoes the work from the changelog. Runs in a daemon thread.
         """
-        while not self._watch_stop.wait(5.0):
+        while not self._watch_stop.wait(2.0):
             started = self._call_started
-            if started is None or time.monotonic() - started < _CALL_TIMEOUT + 5.0:
+            if started is None or time.monotonic() - started < _STUCK_AFTER_S:
                 continue
-            log.warning("a transactional call outlived its timeout; refreshing metadata to re-drive it",
-                        extra={"event": "txn_call_stuck", "seconds": round(time.monotonic() - started, 1)})
-            try:
-                self.producer.list_topics(timeout=5.0)
-            except KafkaException:
-                pass
+            log.critical("a transactional call is stuck past its timeout; exiting for a clean restart",
+                         extra={"event": "txn_call_stuck", "seconds": round(time.monotonic() - started, 1)})
+            logging.shutdown()
+            os._exit(EXIT_STUCK)
 
     def _begin(self) -> None:
         if not self.in_txn:

@@ -434,6 +434,8 @@ class WebhookPoster:
         Waits between attempts (tests pass a recorder).
     """
 
+    # Timeout and rate limiting say "try later"; so do 5xx answers. Other 4xx answers mean the
+    # request itself is wrong and would fail again (common practice for webhook senders).
     RETRY_STATUS = frozenset({408, 429})
 
     def __init__(self, url: str, *, timeout: float = 5.0, retries: int = 3, backoff: float = 0.5,
@@ -456,6 +458,7 @@ class WebhookPoster:
         """One POST: (delivered, worth retrying, what happened)."""
         req = urllib.request.Request(
             self.url, data=n.body(), method="POST",
+            # Idempotency-Key: the header name of the IETF httpapi draft for safely retried POSTs.
             headers={"Content-Type": "application/json", "User-Agent": "tidewatch-notify/1",
                      "Idempotency-Key": n.id, **self.headers},
         )

@@ -670,7 +670,6 @@ def test_anonymous_resource_is_dropped_and_counted_when_others_are_named(encodin
 def test_garbage_is_invalid(encoding, raw):
     with pytest.raises(Rejected) as exc:
         dec(encoding).decode(raw)
-    assert exc.value.code in OTLP_REASONS or exc.value.code in REASONS
     assert exc.value.code == "otlp_invalid"
 
 
@@ -730,7 +729,8 @@ _JSON = st.recursive(
 )
 
 
-@settings(max_examples=300, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+# derandomize: seeded, the same cases every run
+@settings(max_examples=300, deadline=None, derandomize=True, database=None, suppress_health_check=[HealthCheck.too_slow])
 @given(_JSON)
 def test_any_json_gives_events_or_a_rejection(obj):
     try:
@@ -800,7 +800,7 @@ _PAYLOAD = st.fixed_dictionaries({"resourceMetrics": st.lists(
     min_size=1, max_size=2)})
 
 
-@settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large])
+@settings(max_examples=60, deadline=None, derandomize=True, database=None, suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large])
 @given(_PAYLOAD)
 def test_fast_json_reader_agrees_with_the_reference_or_hands_on(obj):
     # Reference: protobuf's json_format.ParseDict. The fast reader may give up (and the
@@ -813,7 +813,7 @@ def test_fast_json_reader_agrees_with_the_reference_or_hands_on(obj):
     assert fast == _parse_reference(raw)
 
 
-@settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large])
+@settings(max_examples=60, deadline=None, derandomize=True, database=None, suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large])
 @given(_PAYLOAD)
 def test_both_encodings_of_one_request_give_the_same_events(obj):
     raw = orjson.dumps(obj)
@@ -831,7 +831,7 @@ def test_both_encodings_of_one_request_give_the_same_events(obj):
     assert results[0] == results[1]
 
 
-@settings(max_examples=300, deadline=None)
+@settings(max_examples=300, deadline=None, derandomize=True, database=None)
 @given(st.data())
 def test_any_damaged_protobuf_gives_events_or_a_rejection(data):
     req = one_request(lambda sm: (counter(sm, "r", CUMULATIVE, (T0, 5, T0 - S)),

@@ -464,7 +464,7 @@ def test_kafka_driver_reads_committed_scores_only_and_commits_its_offsets(kafka_
     r = receiver()
     state = tmp_path / "state.json"
     stats = run_kafka(AlertTracker(3), WebhookPoster(r.url, sleep=lambda s: None), bootstrap=kafka_bootstrap,
-                      topic=topic, group=group, idle_exit=3.0, state_file=state)
+                      topic=topic, group=group, idle_exit=5.0, state_file=state)
     got = sorted((b["service"], b["state"], b["window"]["start"]) for b in r.bodies())
     assert got == [
         ("fare-quote", "firing", _iso(T0 + 60)),
@@ -478,6 +478,6 @@ def test_kafka_driver_reads_committed_scores_only_and_commits_its_offsets(kafka_
     # score resolving fare-quote arrives and is the only thing acted on.
     _produce_transaction(kafka_bootstrap, topic, [score("fare-quote", k, False) for k in (3, 4)], commit=True)
     rc = main(["--bootstrap", kafka_bootstrap, "--topic", topic, "--group", group, "--webhook", r.url,
-               "--state-file", str(state), "--idle-exit", "3"])
+               "--state-file", str(state), "--idle-exit", "5"])
     assert rc == 0
     assert [(b["service"], b["state"]) for b in r.bodies()[3:]] == [("fare-quote", "resolved")]
