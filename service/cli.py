@@ -190,6 +190,14 @@ def cmd_check_config(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def cmd_notify(args: argparse.Namespace) -> int:
+    from service.subscriber import run_args
+
+    stop = threading.Event()
+    _install_stop_handlers(stop)
+    return run_args(args, stop)
+
+
 def cmd_config_schema(args: argparse.Namespace) -> int:
     import json
 
@@ -247,6 +255,14 @@ def build_parser() -> argparse.ArgumentParser:
     c.add_argument("file", metavar="FILE")
     c.add_argument("services", nargs="*", metavar="SERVICE")
     c.set_defaults(func=cmd_check_config)
+
+    from service.subscriber import add_arguments as notify_arguments
+
+    n = sub.add_parser("notify", help="turn score messages into webhook alert notifications (onset and resolve)",
+                       epilog=EPILOG, description="An example score-topic subscriber: one notification per service per "
+                       "alert onset, one resolve message when it clears.")
+    notify_arguments(n)
+    n.set_defaults(func=cmd_notify)
 
     s = sub.add_parser("config-schema", help="print the JSON Schema of the config file", epilog=EPILOG)
     s.set_defaults(func=cmd_config_schema)

@@ -89,6 +89,8 @@ class Engine:
         for service in gone:
             del self.owner[service]
             self.registry.drop(service)
+            # Another instance owns it now: stop exporting its last score from here.
+            self.stats.latest.pop(service, None)
         return gone
 
     def reject(self, code: str, detail: str, raw: bytes, origin: Any) -> None:

@@ -353,7 +353,10 @@ class KafkaRunner:
     def _record_lag(self) -> None:
         # Cached watermarks come with every fetch response: no extra request per commit.
         lag = self.stats.consumer_lag
-        for (topic, partition), offset in self.pending_offsets.items():
+        for topic, partition in self.assigned:
+            offset = self._next_offset.get((topic, partition))
+            if offset is None:
+                continue
             try:
                 _low, high = self.consumer.get_watermark_offsets(TopicPartition(topic, partition), cached=True)
             except KafkaException:
@@ -450,6 +453,8 @@ class KafkaRunner:
                 "auto.offset.reset": "earliest",
             }
         )
+        # The operator's consumer tuning (prefetch limits, TLS) applies here too, but never their group.
+        conf.update({key: v for key, v in k.consumer_properties.items() if key not in ("group.id", "isolation.level")})
         restorer = Consumer(conf)
         states: dict[int, PartitionState] = {p: PartitionState() for p in partitions}
         try:
@@ -472,6 +477,8 @@ class KafkaRunner:
                     log.info("still restoring; an open transaction may hold the changelog back",
                              extra={"event": "restore_waiting", "partitions": sorted(todo)})
                     next_note = time.monotonic() + 10.0
+                # The loop is alive while it restores: /healthz must not fail a long restore.
+                self.stats.heartbeat = time.monotonic()
                 for msg in restorer.consume(num_messages=5000, timeout=0.5):
                     err = msg.error()
                     if err is not None:
@@ -524,7 +531,9 @@ class KafkaRunner:
     def _on_assign(self, consumer: Consumer, partitions: list[TopicPartition]) -> None:
         parts = [(tp.topic, tp.partition) for tp in partitions]
         self.assigned.update(parts)
+        self.stats.ready = False  # /readyz: not until the assigned state is restored
         self._restore([(t, p) for t, p in parts if t in self.scoring_topics])
+        self.stats.ready = True
         log.info("partitions assigned", extra={"event": "assigned", "partitions": sorted(parts)})
 
     def _on_revoke(self, consumer: Consumer, partitions: list[TopicPartition]) -> None:
@@ -648,7 +657,6 @@ class KafkaRunner:
         if self.http_listen:
             registry = build_registry(self.stats, lambda: len(self.engine.registry.models), self.config.limits.max_service_series)
             server = MetricsServer(self.http_listen, registry, self.stats).start()
-        self.stats.ready = True
         log.info("consuming", extra={"event": "started", "topics": topics, "instance": self.instance,
                                      "transactional_id": f"{k.group_id}.{self.instance}"})
         interval = k.commit_interval

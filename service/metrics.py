@@ -24,6 +24,7 @@ Metric names (all prefixed ``tidewatch_``; counters end in ``_total``, units in 
 ``consumer_lag_messages{topic,partition}`` Kafka: messages between the committed position and the log end
 ``service_score{service}``                latest calibrated score per service
 ``service_anomalous{service}``            1 if the latest window was flagged
+``service_window_end_seconds{service}``   end of the latest scored window (freshness of the two above)
 ``service_series_dropped``                services left out of the per-service series by the limit
 ``up_since_seconds``                      process start (epoch seconds)
 ========================================  =======================================================
@@ -131,11 +132,16 @@ class RuntimeCollector(Collector):
             items = ranked[: self.max_service_series]
         score = GaugeMetricFamily(P + "service_score", "Latest calibrated score per service (0 to 1).", labels=["service"])
         flag = GaugeMetricFamily(P + "service_anomalous", "1 if the service's latest window was flagged.", labels=["service"])
-        for service, (value, anomalous, _end) in sorted(items):
+        end = GaugeMetricFamily(P + "service_window_end_seconds",
+                                "End of the service's latest scored window (epoch seconds): how fresh the two above are.",
+                                labels=["service"])
+        for service, (value, anomalous, window_end) in sorted(items):
             score.add_metric([service], value)
             flag.add_metric([service], 1.0 if anomalous else 0.0)
+            end.add_metric([service], window_end)
         yield score
         yield flag
+        yield end
         yield GaugeMetricFamily(
             P + "service_series_dropped", "Services left out of per-service series by the limit.", value=dropped
         )
