@@ -28,7 +28,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Annotated, Any, Literal
 
-from pydantic import BaseModel, BeforeValidator, ConfigDict, Field, ValidationError, WithJsonSchema, field_validator
+from pydantic import BaseModel, BeforeValidator, ConfigDict, Field, ValidationError, WithJsonSchema, field_validator, model_validator
 
 from models import MODEL_KINDS, ModelSettings
 from service.errors import ConfigError
@@ -174,6 +174,19 @@ class LimitsConfig(_Frozen):
     )
 
 
+InputFormat = Literal["native", "otlp_json", "otlp_proto"]
+
+
+class OtlpConfig(_Frozen):
+    """OpenTelemetry metrics input (as the OpenTelemetry Collector's Kafka exporter writes them)."""
+
+    service_attributes: tuple[str, ...] = Field(
+        ("service.name",), min_length=1, description="Resource attributes that name the service, first present wins."
+    )
+    histogram_quantile: float = Field(0.95, gt=0, lt=1, description="Quantile estimated from histogram buckets.")
+    max_series: int = Field(100_000, ge=1, description="Cumulative series remembered for rates (least recent evicted).")
+
+
 class KafkaConfig(_Frozen):
     """The Kafka bus. When this table is present, ``tidewatch run`` without ``--input`` reads from Kafka.
 
@@ -184,6 +197,10 @@ class KafkaConfig(_Frozen):
 
     bootstrap_servers: str = Field("127.0.0.1:9092", min_length=1, description="Broker list, host:port[,host:port].")
     input_topics: tuple[str, ...] = Field(("tidewatch-metrics",), min_length=1, description="Topics of metric messages.")
+    input_formats: dict[str, InputFormat] = Field(
+        default_factory=dict,
+        description="Per input topic: native (default), otlp_json or otlp_proto (OpenTelemetry Collector Kafka exporter).",
+    )
     output_topic: str = Field("tidewatch-scores", min_length=1, description="Where score messages go, keyed by service.")
     rejects_topic: str = Field("tidewatch-rejects", min_length=1, description="Dead-letter topic: original bytes, reason in headers.")
     changelog_topic: str = Field(
@@ -214,6 +231,13 @@ class KafkaConfig(_Frozen):
     consumer_properties: dict[str, str | int | float | bool] = Field(default_factory=dict)
     producer_properties: dict[str, str | int | float | bool] = Field(default_factory=dict)
 
+    @model_validator(mode="after")
+    def _formats_name_input_topics(self) -> "KafkaConfig":
+        unknown = sorted(set(self.input_formats) - set(self.input_topics))
+        if unknown:
+            raise ValueError(f"input_formats names topics that are not in input_topics: {unknown}")
+        return self
+
 
 class Config(_Frozen):
     """The whole config file."""
@@ -224,6 +248,7 @@ class Config(_Frozen):
     http: HttpConfig = Field(default_factory=HttpConfig)
     limits: LimitsConfig = Field(default_factory=LimitsConfig)
     kafka: KafkaConfig | None = Field(None, description="The Kafka bus; absent means embedded mode only.")
+    otlp: OtlpConfig = Field(default_factory=OtlpConfig)
 
     def settings_for(self, service: str) -> "ServiceSettings":
         """The resolved settings of one service (first matching rule wins)."""
