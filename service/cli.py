@@ -138,6 +138,7 @@ def cmd_run(args: argparse.Namespace) -> int:
         http_listen=args.listen,
         state_key=_state_key(),
         reloader=reloader,
+        input_format=args.input_format,
     )
     summary = run_embedded(config, opts, stop)
     log.info(summary.describe(), extra={"event": "run_finished", "windows": summary.windows, "flagged": summary.flagged})
@@ -165,7 +166,8 @@ def cmd_replay(args: argparse.Namespace) -> int:
         raise ConfigError("--report reads the scores back: give --output a file, not -")
     from service.progress import Progress
 
-    summary = replay(config, args.input, args.output, args.rejects, progress=Progress.for_input(args.input))
+    summary = replay(config, args.input, args.output, args.rejects, progress=Progress.for_input(args.input),
+                     input_format=args.input_format)
     print(summary.describe(), file=sys.stderr)
     if args.report is not None:
         from service.report import write_report
@@ -227,6 +229,7 @@ def build_parser() -> argparse.ArgumentParser:
     r.add_argument("--rejects", default=None, help="rejected messages with their reasons: a file, or - for stdout")
     r.add_argument("--state-dir", default=None, help="state directory (default: the config's state.dir)")
     r.add_argument("--follow", action="store_true", help="at the end of the input file, wait for more lines")
+    r.add_argument("--input-format", choices=("native", "otlp_json"), default="native", help="native (default) or otlp_json: one OpenTelemetry ExportMetricsServiceRequest (OTLP/JSON) per line")
     r.add_argument("--listen", default=None, help="host:port for /metrics, /healthz, /readyz; '' turns it off")
     r.add_argument("--no-supervise", action="store_true",
                    help="Kafka: run the worker in this process instead of under a restarting parent")
@@ -237,6 +240,7 @@ def build_parser() -> argparse.ArgumentParser:
     rp.add_argument("input", metavar="INPUT", help="recorded JSON lines, or - for stdin")
     rp.add_argument("--output", required=True, metavar="SCORES", help="score messages as JSON lines (- for stdout)")
     rp.add_argument("--window", default=None, metavar="DURATION", help="window length for every service, e.g. 5m")
+    rp.add_argument("--input-format", choices=("native", "otlp_json"), default="native", help="native (default) or otlp_json: one OpenTelemetry ExportMetricsServiceRequest (OTLP/JSON) per line")
     rp.add_argument("--config", default=None, help="config file (TOML)")
     rp.add_argument("--rejects", default=None, help="where rejected lines go, with their reasons")
     rp.add_argument("--report", default=None, metavar="HTML", help="write a self-contained HTML backtest report")

@@ -74,7 +74,8 @@ def _open_input(path: str) -> BinaryIO:
 class _Loop:
     """Read batches of lines into the engine; shared by run and replay."""
 
-    def __init__(self, engine: Engine, src: SourceWindows, f: BinaryIO, *, line: int, follow: bool, stop: threading.Event):
+    def __init__(self, engine: Engine, src: SourceWindows, f: BinaryIO, *, line: int, follow: bool, stop: threading.Event,
+                 decode_many=None):
         self.engine = engine
         self.src = src
         self.f = f
@@ -83,6 +84,7 @@ class _Loop:
         self.stop = stop
         self.pending = b""
         self.on_idle = None  # called while following a file that has no new lines
+        self.decode_many = decode_many  # OpenTelemetry lines: one payload, many events
 
     def offset(self) -> int:
         """Byte offset just past the last line handed to the engine."""
@@ -115,7 +117,10 @@ class _Loop:
         src = self.src
         for lines in self.batches():
             base = self.line
-            engine.feed(src, lines, lambda i, base=base: {"line": base + i + 1})
+            if self.decode_many is None:
+                engine.feed(src, lines, lambda i, base=base: {"line": base + i + 1})
+            else:
+                engine.feed_payloads(src, lines, lambda i, base=base: {"line": base + i + 1}, self.decode_many)
             self.line = base + len(lines)
             engine.stats.heartbeat = time.monotonic()
             if progress is not None:
@@ -150,7 +155,19 @@ def _summary(engine: Engine, lines: int, started: float) -> RunSummary:
     )
 
 
-def replay(config: Config, input_path: str, output: str, rejects: str | None = None, *, progress=None) -> RunSummary:
+def _payload_decoder(config: Config, input_format: str):
+    if input_format == "native":
+        return None
+    if input_format != "otlp_json":
+        raise ValueError(f"line files carry native or otlp_json messages, not {input_format}")
+    from service.otlp import OtlpDecoder
+
+    return OtlpDecoder("otlp_json", service_attributes=config.otlp.service_attributes,
+                       histogram_quantile=config.otlp.histogram_quantile, max_series=config.otlp.max_series)
+
+
+def replay(config: Config, input_path: str, output: str, rejects: str | None = None, *, progress=None,
+           input_format: str = "native") -> RunSummary:
     """Score a recorded file from fresh models; flush every window at the end.
 
     >>> import tempfile, os
@@ -171,7 +188,9 @@ def replay(config: Config, input_path: str, output: str, rejects: str | None = N
     src = engine.source(SOURCE_ID)
     try:
         with _open_input(input_path) as f:
-            loop = _Loop(engine, src, f, line=0, follow=False, stop=threading.Event())
+            decoder = _payload_decoder(config, input_format)
+            loop = _Loop(engine, src, f, line=0, follow=False, stop=threading.Event(),
+                         decode_many=None if decoder is None else decoder.decode)
             loop.pump(progress=progress)
         engine.flush(src)
     finally:
@@ -195,6 +214,7 @@ class RunOptions:
     http_listen: str | None = None  # None: take the config's
     state_key: bytes | None = None
     reloader: object | None = None  # a service.reload.ConfigReloader, polled between batches
+    input_format: str = "native"  # or otlp_json: one OpenTelemetry ExportMetricsServiceRequest per line
 
 
 def run_embedded(config: Config, opts: RunOptions, stop: threading.Event) -> RunSummary:
@@ -255,7 +275,11 @@ def run_embedded(config: Config, opts: RunOptions, stop: threading.Event) -> Run
         f.seek(int(rt["input"]["offset"]))
         start_line = int(rt["input"].get("line", 0))
         log.info("resuming", extra={"event": "resumed", "line": start_line, "generation": restored.generation})
-    loop = _Loop(engine, src, f, line=start_line, follow=opts.follow, stop=stop)
+    decoder = _payload_decoder(config, opts.input_format)
+    if decoder is not None and resume and "otlp" in rt:
+        decoder = type(decoder).from_state(rt["otlp"])  # cumulative sums carry on exactly
+    loop = _Loop(engine, src, f, line=start_line, follow=opts.follow, stop=stop,
+                 decode_many=None if decoder is None else decoder.decode)
     stats.ready = True
 
     saved_at_offset = -1
@@ -273,6 +297,7 @@ def run_embedded(config: Config, opts: RunOptions, stop: threading.Event) -> Run
             "output": {"path": out_path, "offset": out_off},
             "rejects": {"path": rej_path, "offset": rej_off},
             "sources": {SOURCE_ID: src.to_state()} if in_path else {},
+            **({"otlp": decoder.to_state()} if decoder is not None and in_path else {}),
             "saved_at": time.time(),
         }
         try:

@@ -34,6 +34,7 @@ import time
 from collections.abc import Callable
 from typing import Any, TypeVar
 
+import orjson
 from confluent_kafka import OFFSET_BEGINNING, Consumer, KafkaError, KafkaException, Producer, TopicPartition
 from confluent_kafka.admin import AdminClient, NewTopic
 
@@ -157,6 +158,15 @@ class KafkaRunner:
         self.scoring_topics = set(k.input_topics) if k.input_keyed else {k.repartition_topic}
         self.forward_topics = set() if k.input_keyed else set(k.input_topics)
         self.engine = Engine(config, on_score=self._on_score, on_reject=self._on_reject, stats=self.stats)
+        # OpenTelemetry topics: one decoder each (a decoder remembers cumulative sums per series).
+        self._otlp: dict[str, Any] = {}
+        for topic, fmt in k.input_formats.items():
+            if fmt != "native":
+                from service.otlp import OtlpDecoder
+
+                self._otlp[topic] = OtlpDecoder(fmt, service_attributes=config.otlp.service_attributes,
+                                                histogram_quantile=config.otlp.histogram_quantile,
+                                                max_series=config.otlp.max_series)
         self.consumer: Consumer | None = None
         self.producer: Producer | None = None
         self.in_txn = False
@@ -585,7 +595,12 @@ class KafkaRunner:
                 src = engine.source(self._source_id(topic, partition))
                 src.tag = partition
                 values = [m.value() or b"" for m in run]
-                engine.feed(src, values, lambda idx, run=run: (run[idx].topic(), run[idx].partition(), run[idx].offset()))
+                origin = lambda idx, run=run: (run[idx].topic(), run[idx].partition(), run[idx].offset())  # noqa: E731
+                otlp = self._otlp.get(topic)
+                if otlp is None:
+                    engine.feed(src, values, origin)
+                else:
+                    engine.feed_payloads(src, values, origin, otlp.decode)
                 if src.high_mark != float("-inf"):
                     self.stats.high_marks[self._source_id(topic, partition)] = src.high_mark
             self.pending_offsets[(topic, partition)] = run[-1].offset() + 1
@@ -594,6 +609,10 @@ class KafkaRunner:
 
     def _forward(self, run: list) -> None:
         """Unkeyed input: validate, then re-key by service onto the repartition topic."""
+        otlp = self._otlp.get(run[0].topic())
+        if otlp is not None:
+            self._forward_otlp(run, otlp)
+            return
         decode = self.engine.decoder.decode
         mark = self._fwd_marks.get((run[0].topic(), run[0].partition()), float("-inf"))
         for m in run:
@@ -607,6 +626,24 @@ class KafkaRunner:
                 mark = ts
             self._produce(self.k.repartition_topic, raw, key=service.encode("utf-8"))
         self._fwd_marks[(run[0].topic(), run[0].partition())] = mark
+
+    def _forward_otlp(self, run: list, otlp: Any) -> None:
+        """OpenTelemetry payloads: split into per-service native messages on the repartition topic."""
+        tp = (run[0].topic(), run[0].partition())
+        mark = self._fwd_marks.get(tp, float("-inf"))
+        for m in run:
+            raw = m.value() or b""
+            try:
+                events = otlp.decode(raw)
+            except Rejected as r:
+                self.engine.reject(r.code, r.detail, raw, (m.topic(), m.partition(), m.offset()))
+                continue
+            for service, ts, metrics in events:
+                if ts > mark:
+                    mark = ts
+                self._produce(self.k.repartition_topic, orjson.dumps({"service": service, "ts": ts, "metrics": metrics}),
+                              key=service.encode("utf-8"))
+        self._fwd_marks[tp] = mark
 
     def _align(self) -> None:
         """Pause input partitions that run ahead in event time; resume them when the others catch up.
