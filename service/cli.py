@@ -114,6 +114,7 @@ def _supervise() -> int:
 
 def cmd_run(args: argparse.Namespace) -> int:
     config = load_config(args.config)
+    configure_logging(args.log_level, config.logging.level)
     stop = threading.Event()
     _install_stop_handlers(stop)
     from service.reload import ConfigReloader

@@ -239,6 +239,14 @@ class KafkaConfig(_Frozen):
         return self
 
 
+class LoggingConfig(_Frozen):
+    """Structured JSON logs on stderr."""
+
+    level: Literal["debug", "info", "warning", "error"] = Field(
+        "info", description="Log level; --log-level and TIDEWATCH_LOG_LEVEL take precedence."
+    )
+
+
 class Config(_Frozen):
     """The whole config file."""
 
@@ -249,6 +257,7 @@ class Config(_Frozen):
     limits: LimitsConfig = Field(default_factory=LimitsConfig)
     kafka: KafkaConfig | None = Field(None, description="The Kafka bus; absent means embedded mode only.")
     otlp: OtlpConfig = Field(default_factory=OtlpConfig)
+    logging: LoggingConfig = Field(default_factory=LoggingConfig)
 
     def settings_for(self, service: str) -> "ServiceSettings":
         """The resolved settings of one service (first matching rule wins)."""

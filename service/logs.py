@@ -38,8 +38,9 @@ class JsonFormatter(logging.Formatter):
         return orjson.dumps(doc, default=str).decode()
 
 
-def configure_logging(level: str | None = None) -> None:
-    level = (level or os.environ.get("TIDEWATCH_LOG_LEVEL") or "info").upper()
+def configure_logging(level: str | None = None, config_level: str | None = None) -> None:
+    """Level: the command line's, else ``TIDEWATCH_LOG_LEVEL``, else the config file's, else info."""
+    level = (level or os.environ.get("TIDEWATCH_LOG_LEVEL") or config_level or "info").upper()
     handler = logging.StreamHandler(sys.stderr)
     handler.setFormatter(JsonFormatter())
     root = logging.getLogger("tidewatch")

@@ -135,3 +135,19 @@ def test_the_example_config_validates_against_the_json_schema(repo_root):
     jsonschema.Draft202012Validator(schema).validate(doc)
     with pytest.raises(jsonschema.ValidationError):
         jsonschema.Draft202012Validator(schema).validate({**doc, "defaults": {"window": "5 minutes"}})
+
+
+def test_the_log_level_comes_from_the_flag_then_the_environment_then_the_config(monkeypatch):
+    import logging
+
+    from service.logs import configure_logging
+
+    monkeypatch.delenv("TIDEWATCH_LOG_LEVEL", raising=False)
+    configure_logging(None, "warning")
+    assert logging.getLogger("tidewatch").level == logging.WARNING
+    monkeypatch.setenv("TIDEWATCH_LOG_LEVEL", "error")
+    configure_logging(None, "warning")
+    assert logging.getLogger("tidewatch").level == logging.ERROR
+    configure_logging("debug", "warning")
+    assert logging.getLogger("tidewatch").level == logging.DEBUG
+    configure_logging(None, None)
