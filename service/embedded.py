@@ -162,8 +162,21 @@ def _payload_decoder(config: Config, input_format: str):
         raise ValueError(f"line files carry native or otlp_json messages, not {input_format}")
     from service.otlp import OtlpDecoder
 
-    return OtlpDecoder("otlp_json", service_attributes=config.otlp.service_attributes,
-                       histogram_quantile=config.otlp.histogram_quantile, max_series=config.otlp.max_series)
+    return OtlpDecoder("otlp_json", **otlp_settings(config))
+
+
+def otlp_settings(config: Config) -> dict:
+    """The OpenTelemetry decoder's settings from the config (the current ones win over saved state)."""
+    lim = config.limits
+    return {
+        "service_attributes": config.otlp.service_attributes,
+        "histogram_quantile": config.otlp.histogram_quantile,
+        "max_series": config.otlp.max_series,
+        # Collector batches are large: the native message-size limit does not apply to a payload.
+        "max_service_name": lim.max_service_name,
+        "max_metrics": lim.max_metrics,
+        "max_future_skew": lim.max_future_skew,
+    }
 
 
 def replay(config: Config, input_path: str, output: str, rejects: str | None = None, *, progress=None,
@@ -277,7 +290,7 @@ def run_embedded(config: Config, opts: RunOptions, stop: threading.Event) -> Run
         log.info("resuming", extra={"event": "resumed", "line": start_line, "generation": restored.generation})
     decoder = _payload_decoder(config, opts.input_format)
     if decoder is not None and resume and "otlp" in rt:
-        decoder = type(decoder).from_state(rt["otlp"])  # cumulative sums carry on exactly
+        decoder = type(decoder).from_state(rt["otlp"], **otlp_settings(config))  # cumulative sums carry on exactly
     loop = _Loop(engine, src, f, line=start_line, follow=opts.follow, stop=stop,
                  decode_many=None if decoder is None else decoder.decode)
     stats.ready = True

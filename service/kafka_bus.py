@@ -162,11 +162,12 @@ class KafkaRunner:
         self._otlp: dict[str, Any] = {}
         for topic, fmt in k.input_formats.items():
             if fmt != "native":
+                from service.embedded import otlp_settings
                 from service.otlp import OtlpDecoder
 
-                self._otlp[topic] = OtlpDecoder(fmt, service_attributes=config.otlp.service_attributes,
-                                                histogram_quantile=config.otlp.histogram_quantile,
-                                                max_series=config.otlp.max_series)
+                # Cumulative-sum memory is not checkpointed on Kafka: after a restart or a partition move
+                # each cumulative series gives no rate for one export interval (its first point is a baseline).
+                self._otlp[topic] = OtlpDecoder(fmt, **otlp_settings(config))
         self.consumer: Consumer | None = None
         self.producer: Producer | None = None
         self.in_txn = False
