@@ -574,6 +574,7 @@ class KafkaRunner:
     # --- the loop ------------------------------------------------------------------------
     def _process(self, msgs: list) -> None:
         engine = self.engine
+        held: set[tuple[str, int]] = set()  # forward partitions held back during this batch
         i, n = 0, len(msgs)
         while i < n:
             msg = msgs[i]
@@ -589,9 +590,21 @@ class KafkaRunner:
             while j < n and msgs[j].error() is None and msgs[j].partition() == partition and msgs[j].topic() == topic:
                 j += 1
             run = msgs[i:j]
+            if (topic, partition) in held:
+                i = j
+                continue
             self._begin()
             if topic in self.forward_topics:
-                self._forward(run)
+                done = self._forward(run)
+                if done < len(run):
+                    # The rest of this run was held back (the partition runs ahead in event time);
+                    # it is fetched again from the held offset once the others catch up.
+                    if done:
+                        self.pending_offsets[(topic, partition)] = run[done - 1].offset() + 1
+                    self._next_offset[(topic, partition)] = run[done].offset()
+                    held.add((topic, partition))
+                    i = j
+                    continue
             else:
                 src = engine.source(self._source_id(topic, partition))
                 src.tag = partition
@@ -608,15 +621,20 @@ class KafkaRunner:
             self._next_offset[(topic, partition)] = run[-1].offset() + 1
             i = j
 
-    def _forward(self, run: list) -> None:
-        """Unkeyed input: validate, then re-key by service onto the repartition topic."""
+    def _forward(self, run: list) -> int:
+        """Unkeyed input: validate, then re-key by service onto the repartition topic.
+
+        Returns how many messages of ``run`` were handled; the rest are held back (see :meth:`_hold`).
+        """
         otlp = self._otlp.get(run[0].topic())
         if otlp is not None:
             self._forward_otlp(run, otlp)
-            return
+            return len(run)
         decode = self.engine.decoder.decode
-        mark = self._fwd_marks.get((run[0].topic(), run[0].partition()), float("-inf"))
-        for m in run:
+        tp = (run[0].topic(), run[0].partition())
+        mark = self._fwd_marks.get(tp, float("-inf"))
+        limit = self._forward_limit(tp)
+        for idx, m in enumerate(run):
             raw = m.value() or b""
             try:
                 service, ts, _metrics = decode(raw)
@@ -624,9 +642,44 @@ class KafkaRunner:
                 self.engine.reject(r.code, r.detail, raw, (m.topic(), m.partition(), m.offset()))
                 continue
             if ts > mark:
+                if ts > limit:
+                    self._fwd_marks[tp] = mark
+                    self._hold(tp, m.offset(), ts)
+                    return idx
                 mark = ts
             self._produce(self.k.repartition_topic, raw, key=service.encode("utf-8"))
-        self._fwd_marks[(run[0].topic(), run[0].partition())] = mark
+        self._fwd_marks[tp] = mark
+        return len(run)
+
+    def _forward_limit(self, tp: tuple[str, int]) -> float:
+        """How far in event time ``tp`` may forward: the slowest other busy input partition plus the alignment."""
+        marks = [self._fwd_marks.get(o, float("-inf")) for o in self._busy_forward_partitions() if o != tp]
+        return min(marks) + self.k.repartition_alignment if marks else float("inf")
+
+    def _busy_forward_partitions(self) -> list[tuple[str, int]]:
+        """Assigned input partitions that still have messages to read (a partition at its log end is idle)."""
+        out = []
+        for tp in self.assigned:
+            if tp[0] not in self.forward_topics:
+                continue
+            try:
+                _low, high = self.consumer.get_watermark_offsets(TopicPartition(*tp), cached=True)
+            except KafkaException:
+                continue
+            if high >= 0 and self._next_offset.get(tp, 0) < high:
+                out.append(tp)
+        return out
+
+    def _hold(self, tp: tuple[str, int], offset: int, ts: float) -> None:
+        """Stop forwarding ``tp`` at ``offset``: pause it, and fetch from there again when resumed.
+
+        Its mark becomes the held message's event time, so the others know how far ahead it is.
+        """
+        tpl = TopicPartition(tp[0], tp[1], offset)
+        self.consumer.pause([TopicPartition(tp[0], tp[1])])
+        self.consumer.seek(tpl)
+        self._paused.add(tp)
+        self._fwd_marks[tp] = ts
 
     def _forward_otlp(self, run: list, otlp: Any) -> None:
         """OpenTelemetry payloads: split into per-service native messages on the repartition topic."""
@@ -655,18 +708,7 @@ class KafkaRunner:
         merged order close to event-time order. A partition read up to its log end is idle and holds no
         one back.
         """
-        parts = [tp for tp in self.assigned if tp[0] in self.forward_topics]
-        if len(parts) < 2:
-            return
-        busy: list[tuple[float, tuple[str, int]]] = []
-        for tp in parts:
-            try:
-                _low, high = self.consumer.get_watermark_offsets(TopicPartition(*tp), cached=True)
-            except KafkaException:
-                high = -1
-            position = self._next_offset.get(tp, 0)
-            if high >= 0 and position < high:
-                busy.append((self._fwd_marks.get(tp, float("-inf")), tp))
+        busy = [(self._fwd_marks.get(tp, float("-inf")), tp) for tp in self._busy_forward_partitions()]
         limit = (min(m for m, _ in busy) + self.k.repartition_alignment) if busy else float("inf")
         pause = [tp for m, tp in busy if m > limit and tp not in self._paused]
         resume = [tp for tp in self._paused if tp not in dict((t, m) for m, t in busy) or
