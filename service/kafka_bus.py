@@ -31,6 +31,7 @@ import os
 import socket
 import threading
 import time
+from collections import deque
 from collections.abc import Callable
 from typing import Any, TypeVar
 
@@ -59,6 +60,7 @@ _CALL_TIMEOUT = 30.0  # seconds for one transactional call before it is retried
 # A call still blocked this long after it started will not return (see KafkaRunner._watch_calls).
 _STUCK_AFTER_S = _CALL_TIMEOUT + 15.0
 EXIT_STUCK = 75  # EX_TEMPFAIL: the supervisor restarts the worker
+_QUEUE_PAUSE = 20_000  # unkeyed input: queued messages per partition at which fetching it pauses
 
 
 class _AbortNeeded(Exception):
@@ -177,6 +179,7 @@ class KafkaRunner:
         self.reloader = reloader
         self._closed_at: list[float] = []  # when each window scored in the open transaction closed
         self._fwd_marks: dict[tuple[str, int], float] = {}  # unkeyed input: newest event time forwarded per partition
+        self._fwd_queue: dict[tuple[str, int], deque] = {}  # unkeyed input waiting to be forwarded, per partition
         self._next_offset: dict[tuple[str, int], int] = {}
         self._paused: set[tuple[str, int]] = set()
         self._call_started: float | None = None  # monotonic start of the transactional call under way
@@ -441,6 +444,7 @@ class KafkaRunner:
 
     def _drop(self, topic: str, partition: int) -> None:
         self._fwd_marks.pop((topic, partition), None)
+        self._fwd_queue.pop((topic, partition), None)
         self._next_offset.pop((topic, partition), None)
         self._paused.discard((topic, partition))
         self.engine.drop_source(self._source_id(topic, partition))
@@ -574,7 +578,6 @@ class KafkaRunner:
     # --- the loop ------------------------------------------------------------------------
     def _process(self, msgs: list) -> None:
         engine = self.engine
-        held: set[tuple[str, int]] = set()  # forward partitions held back during this batch
         i, n = 0, len(msgs)
         while i < n:
             msg = msgs[i]
@@ -590,21 +593,14 @@ class KafkaRunner:
             while j < n and msgs[j].error() is None and msgs[j].partition() == partition and msgs[j].topic() == topic:
                 j += 1
             run = msgs[i:j]
-            if (topic, partition) in held:
-                i = j
-                continue
             self._begin()
             if topic in self.forward_topics:
-                done = self._forward(run)
-                if done < len(run):
-                    # The rest of this run was held back (the partition runs ahead in event time);
-                    # it is fetched again from the held offset once the others catch up.
-                    if done:
-                        self.pending_offsets[(topic, partition)] = run[done - 1].offset() + 1
-                    self._next_offset[(topic, partition)] = run[done].offset()
-                    held.add((topic, partition))
-                    i = j
-                    continue
+                # Queued, then forwarded in event-time step with the other input partitions (_drain);
+                # offsets are committed only up to what has been forwarded.
+                self._queue(run)
+                self._next_offset[(topic, partition)] = run[-1].offset() + 1
+                i = j
+                continue
             else:
                 src = engine.source(self._source_id(topic, partition))
                 src.tag = partition
@@ -621,104 +617,87 @@ class KafkaRunner:
             self._next_offset[(topic, partition)] = run[-1].offset() + 1
             i = j
 
-    def _forward(self, run: list) -> int:
-        """Unkeyed input: validate, then re-key by service onto the repartition topic.
-
-        Returns how many messages of ``run`` were handled; the rest are held back (see :meth:`_hold`).
-        """
-        otlp = self._otlp.get(run[0].topic())
-        if otlp is not None:
-            self._forward_otlp(run, otlp)
-            return len(run)
+    def _queue(self, run: list) -> None:
+        """Unkeyed input: validate and queue a run of one input partition for re-keying."""
+        tp = (run[0].topic(), run[0].partition())
+        q = self._fwd_queue.setdefault(tp, deque())
+        otlp = self._otlp.get(tp[0])
         decode = self.engine.decoder.decode
-        tp = (run[0].topic(), run[0].partition())
-        mark = self._fwd_marks.get(tp, float("-inf"))
-        limit = self._forward_limit(tp)
-        for idx, m in enumerate(run):
-            raw = m.value() or b""
-            try:
-                service, ts, _metrics = decode(raw)
-            except Rejected as r:
-                self.engine.reject(r.code, r.detail, raw, (m.topic(), m.partition(), m.offset()))
-                continue
-            if ts > mark:
-                if ts > limit:
-                    self._fwd_marks[tp] = mark
-                    self._hold(tp, m.offset(), ts)
-                    return idx
-                mark = ts
-            self._produce(self.k.repartition_topic, raw, key=service.encode("utf-8"))
-        self._fwd_marks[tp] = mark
-        return len(run)
-
-    def _forward_limit(self, tp: tuple[str, int]) -> float:
-        """How far in event time ``tp`` may forward: the slowest other busy input partition plus the alignment."""
-        marks = [self._fwd_marks.get(o, float("-inf")) for o in self._busy_forward_partitions() if o != tp]
-        return min(marks) + self.k.repartition_alignment if marks else float("inf")
-
-    def _busy_forward_partitions(self) -> list[tuple[str, int]]:
-        """Assigned input partitions that still have messages to read (a partition at its log end is idle)."""
-        out = []
-        for tp in self.assigned:
-            if tp[0] not in self.forward_topics:
-                continue
-            try:
-                _low, high = self.consumer.get_watermark_offsets(TopicPartition(*tp), cached=True)
-            except KafkaException:
-                continue
-            if high >= 0 and self._next_offset.get(tp, 0) < high:
-                out.append(tp)
-        return out
-
-    def _hold(self, tp: tuple[str, int], offset: int, ts: float) -> None:
-        """Stop forwarding ``tp`` at ``offset``: pause it, and fetch from there again when resumed.
-
-        Its mark becomes the held message's event time, so the others know how far ahead it is.
-        """
-        tpl = TopicPartition(tp[0], tp[1], offset)
-        self.consumer.pause([TopicPartition(tp[0], tp[1])])
-        self.consumer.seek(tpl)
-        self._paused.add(tp)
-        self._fwd_marks[tp] = ts
-
-    def _forward_otlp(self, run: list, otlp: Any) -> None:
-        """OpenTelemetry payloads: split into per-service native messages on the repartition topic."""
-        tp = (run[0].topic(), run[0].partition())
-        mark = self._fwd_marks.get(tp, float("-inf"))
         for m in run:
             raw = m.value() or b""
+            origin = (m.topic(), m.partition(), m.offset())
             try:
-                events = otlp.decode(raw)
+                if otlp is None:
+                    service, ts, _metrics = decode(raw)
+                    items = [(service, raw)]
+                else:
+                    events = otlp.decode(raw)
+                    if not events:
+                        q.append((float("-inf"), m.offset(), []))
+                        continue
+                    ts = max(e[1] for e in events)
+                    items = [(s, orjson.dumps({"service": s, "ts": t, "metrics": x})) for s, t, x in events]
             except Rejected as r:
-                self.engine.reject(r.code, r.detail, raw, (m.topic(), m.partition(), m.offset()))
+                self.engine.reject(r.code, r.detail, raw, origin)
+                q.append((float("-inf"), m.offset(), []))  # nothing to forward, but its offset must pass
                 continue
-            for service, ts, metrics in events:
-                if ts > mark:
-                    mark = ts
-                self._produce(self.k.repartition_topic, orjson.dumps({"service": service, "ts": ts, "metrics": metrics}),
-                              key=service.encode("utf-8"))
-        self._fwd_marks[tp] = mark
+            q.append((ts, m.offset(), items))
+        if len(q) >= _QUEUE_PAUSE and tp not in self._paused:
+            # Bounded memory: stop fetching a partition that is far ahead until its queue drains.
+            self.consumer.pause([TopicPartition(*tp)])
+            self._paused.add(tp)
 
-    def _align(self) -> None:
-        """Pause input partitions that run ahead in event time; resume them when the others catch up.
+    def _mark(self, tp: tuple[str, int]) -> float:
+        """Event time of ``tp``'s next message to forward, else of the last one forwarded."""
+        q = self._fwd_queue.get(tp)
+        if q:
+            return max(q[0][0], self._fwd_marks.get(tp, float("-inf")))
+        return self._fwd_marks.get(tp, float("-inf"))
 
-        Re-keying merges every input partition into each repartition partition. Read from a backlog, one
-        input partition can be hours ahead of another, and the merged stream would make the slower one's
-        events late. Keeping partitions within ``repartition_alignment`` of the slowest busy one keeps the
-        merged order close to event-time order. A partition read up to its log end is idle and holds no
-        one back.
+    def _drain(self) -> None:
+        """Forward queued input in event-time step: an input partition may forward a message only while
+        it is at most ``repartition_alignment`` ahead of the slowest other busy partition.
+
+        Every input partition feeds every repartition partition; read from a backlog, one input partition
+        can be hours ahead of another and the merged stream would make the slower one's events late. A
+        partition read to its log end with nothing queued is idle and holds no one back. The slowest
+        partition can always forward, so this never stalls.
         """
-        busy = [(self._fwd_marks.get(tp, float("-inf")), tp) for tp in self._busy_forward_partitions()]
-        limit = (min(m for m, _ in busy) + self.k.repartition_alignment) if busy else float("inf")
-        pause = [tp for m, tp in busy if m > limit and tp not in self._paused]
-        resume = [tp for tp in self._paused if tp not in dict((t, m) for m, t in busy) or
-                  self._fwd_marks.get(tp, float("-inf")) <= limit]
-        if pause:
-            self.consumer.pause([TopicPartition(t, p) for t, p in pause])
-            self._paused.update(pause)
-        if resume:
-            self.consumer.resume([TopicPartition(t, p) for t, p in resume])
-            self._paused.difference_update(resume)
+        parts = [tp for tp in self.assigned if tp[0] in self.forward_topics]
+        if not parts:
+            return
+        align = self.k.repartition_alignment
+        while True:
+            busy = [tp for tp in parts if self._fwd_queue.get(tp) or not self._at_end(tp)]
+            progressed = False
+            for tp in parts:
+                q = self._fwd_queue.get(tp)
+                if not q:
+                    continue
+                others = [self._mark(o) for o in busy if o != tp]
+                limit = min(others) + align if others else float("inf")
+                mark = self._fwd_marks.get(tp, float("-inf"))
+                while q and (q[0][0] <= limit or q[0][0] <= mark):
+                    ts, offset, items = q.popleft()
+                    for service, payload in items:
+                        self._produce(self.k.repartition_topic, payload, key=service.encode("utf-8"))
+                    if ts > mark:
+                        mark = ts
+                    self.pending_offsets[tp] = offset + 1
+                    progressed = True
+                self._fwd_marks[tp] = mark
+                if tp in self._paused and len(q) < _QUEUE_PAUSE // 2:
+                    self.consumer.resume([TopicPartition(*tp)])
+                    self._paused.discard(tp)
+            if not progressed:
+                return
+
+    def _at_end(self, tp: tuple[str, int]) -> bool:
+        try:
+            _low, high = self.consumer.get_watermark_offsets(TopicPartition(*tp), cached=True)
+        except KafkaException:
+            return True
+        return high < 0 or self._next_offset.get(tp, 0) >= high
 
     def run(self) -> None:
         k = self.k
@@ -755,7 +734,7 @@ class KafkaRunner:
                     if msgs:
                         self._process(msgs)
                     if self.forward_topics:
-                        self._align()
+                        self._drain()
                     self.producer.poll(0)
                 except _AbortNeeded as exc:
                     log.warning("transaction must abort; rewinding", extra={"event": "txn_abort", "error": str(exc)})

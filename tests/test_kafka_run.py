@@ -139,11 +139,9 @@ def test_three_instances_one_killed_halfway_score_every_window_once(kafka_bootst
 def test_unkeyed_input_through_the_repartition_topic_scores_like_keyed_input(kafka_bootstrap, kafka_topic, scenario_lines, tmp_path):
     lines, end, data = scenario_lines
     t = _topics(kafka_topic, 3)
-    # A backlog of unkeyed input is read partition by partition; tidewatch pauses partitions that run
-    # ahead (repartition_alignment) but one batch can still carry an input partition ahead by
-    # batch_size * partitions / services scrapes: lateness covers that here.
-    cfg = write_config(tmp_path / "tw.toml", kafka_bootstrap, t, keyed=False, lateness="3h",
-                       extra_consumer={"max.partition.fetch.bytes": 16384}, batch_size=100)
+    # A backlog of unkeyed input is read partition by partition; tidewatch forwards it in event-time
+    # step across input partitions (repartition_alignment), so the default lateness is enough.
+    cfg = write_config(tmp_path / "tw.toml", kafka_bootstrap, t, keyed=False)
     reference = _reference(cfg, data, tmp_path)
     produce_lines(kafka_bootstrap, t.input, lines, keyed=False, partitions=3)
     # Sentinels go through the repartition topic too; each closes the windows of the partition it lands on.
