@@ -172,6 +172,11 @@ class LimitsConfig(_Frozen):
     max_service_series: int = Field(
         5_000, ge=0, description="Most services exported as per-service Prometheus series."
     )
+    max_services: int = Field(
+        50_000, ge=1,
+        description="Most services one process tracks (windows and models); messages of further new services are "
+        "rejected with reason service_limit, so a flood of new names cannot exhaust memory.",
+    )
 
 
 InputFormat = Literal["native", "otlp_json", "otlp_proto"]

@@ -54,6 +54,7 @@ REASONS: dict[str, str] = {
     "bad_metric_value": "a metric value is not a finite number",
     "bad_labels": "'labels' is not an object",
     "unaligned_key": "the service's messages arrive on more than one input partition (key input by service, or turn on repartitioning)",
+    "service_limit": "a new service arrived while the process already tracks limits.max_services services",
     "late": "the event's window had already closed when it arrived (its time is behind the watermark)",
 }
 

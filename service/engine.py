@@ -108,6 +108,7 @@ class Engine:
         settings_of = self.registry.settings
         add = src.add
         owner = self.owner
+        max_services = self.config.limits.max_services
         accepted = 0
         for i, raw in enumerate(raws):
             try:
@@ -118,6 +119,9 @@ class Engine:
             o = owner.get(service)
             if o is not src:
                 if o is None:
+                    if len(owner) >= max_services:
+                        self.reject("service_limit", f"already tracking {max_services} services", raw, origin_of(i))
+                        continue
                     owner[service] = src
                 else:
                     # One service's state lives with one source; a second source would fork it.
@@ -133,6 +137,7 @@ class Engine:
             if src.has_due():
                 self.close(src.pop_closed())
         self.stats.accepted += accepted
+        self.stats.services_tracked = len(owner)
 
     def feed_payloads(self, src: SourceWindows, raws: Sequence[bytes], origin_of: Callable[[int], Any],
                       decode_many: Callable[[bytes], list]) -> None:
@@ -152,11 +157,15 @@ class Engine:
             except Rejected as r:
                 self.reject(r.code, r.detail, raw, origin_of(i))
                 continue
-            late = unaligned = 0
+            late = unaligned = limited = 0
+            max_services = self.config.limits.max_services
             for service, ts, metrics in events:
                 o = owner.get(service)
                 if o is not src:
                     if o is None:
+                        if len(owner) >= max_services:
+                            limited += 1
+                            continue
                         owner[service] = src
                     else:
                         unaligned += 1
@@ -168,6 +177,10 @@ class Engine:
                 accepted += 1
                 if src.has_due():
                     self.close(src.pop_closed())
+            if limited:
+                self.stats.rejected["service_limit"] += limited - 1
+                self.reject("service_limit", f"{limited} event(s) of new services beyond limits.max_services", raw,
+                            origin_of(i))
             if unaligned:
                 self.stats.rejected["unaligned_key"] += unaligned - 1
                 self.reject("unaligned_key", f"{unaligned} event(s) of services that arrive on another partition",
@@ -176,6 +189,7 @@ class Engine:
                 self.stats.rejected["late"] += late - 1  # counted per event, routed once per message
                 self.reject("late", f"{late} of {len(events)} event(s) behind the watermark", raw, origin_of(i))
         self.stats.accepted += accepted
+        self.stats.services_tracked = len(owner)
 
     def flush(self, src: SourceWindows) -> None:
         """Close every open window of a source (end of a finite input)."""

@@ -13,6 +13,7 @@ Metric names (all prefixed ``tidewatch_``; counters end in ``_total``, units in 
 ``windows_flagged_total``                 of those, flagged anomalous
 ``models_live``                           models held in memory
 ``models_created_total``                  models created on first sight of a service
+``services_tracked``                      services tracked (bounded by limits.max_services)
 ``models_restored_total``                 models restored from saved state
 ``state_records_refused_total{kind}``     saved records refused (corrupt, newer format, bad signature)
 ``state_saves_total``                     checkpoints written
@@ -93,6 +94,8 @@ class RuntimeCollector(Collector):
         yield CounterMetricFamily(P + "windows_closed", "Service windows closed and scored.", value=s.windows_closed)
         yield CounterMetricFamily(P + "windows_flagged", "Service windows flagged anomalous.", value=s.windows_flagged)
         yield GaugeMetricFamily(P + "models_live", "Per-service models held in memory.", value=self.live_models())
+        yield GaugeMetricFamily(P + "services_tracked", "Services this process tracks (windows or a model).",
+                                value=s.services_tracked)
         yield CounterMetricFamily(P + "models_created", "Models created on first sight of a service.", value=s.models_created)
         yield CounterMetricFamily(P + "models_restored", "Models restored from saved state.", value=s.models_restored)
         m = CounterMetricFamily(P + "state_records_refused", "Saved state records refused, by kind.", labels=["kind"])

@@ -50,6 +50,7 @@ class RuntimeStats:
         self.windows_closed = 0
         self.windows_flagged = 0
         self.models_created = 0
+        self.services_tracked = 0  # set by the engine after each batch
         self.models_restored = 0
         self.state_records_refused: Counter[str] = Counter()  # by error kind
         self.state_saves = 0

@@ -234,3 +234,15 @@ def test_replay_refuses_a_report_without_an_output_file_and_a_bad_labels_file(tm
     bad.write_text("service,start,end\napi,yesterday,today\n")
     r = _cli("replay", str(src), "--output", str(tmp_path / "s.jsonl"), "--labels", str(bad))
     assert r.returncode == 2 and "line 2" in r.stderr
+
+
+def test_a_flood_of_new_service_names_is_bounded_and_every_message_accounted_for(tmp_path):
+    # 3,000 distinct names against a limit of 100: the rest are rejected with reason service_limit
+    src = tmp_path / "in.jsonl"
+    src.write_bytes(b"".join(orjson.dumps({"service": f"flood-{i}", "ts": T0 + i, "metrics": {"x": 1}}) + b"\n"
+                             for i in range(3000)))
+    out, rej = tmp_path / "s.jsonl", tmp_path / "r.jsonl"
+    summary = replay(parse_config("[limits]\nmax_services = 100\n"), str(src), str(out), str(rej))
+    assert summary.accepted == 100 and summary.rejected == {"service_limit": 2900}
+    assert summary.services == 100
+    assert read_lines(rej)[0]["reason"] == "service_limit"
