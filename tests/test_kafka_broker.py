@@ -380,7 +380,10 @@ def test_compose_file_shape() -> None:
 
     app = compose["services"]["tidewatch"]
     assert app["build"]["context"] == ".."
-    assert app["command"] == ["tidewatch", "run", "--config", "/etc/tidewatch/tidewatch.toml"]
+    # The image's ENTRYPOINT is `tidewatch`: the command starts at the subcommand.
+    assert app["command"][:3] == ["run", "--config", "/etc/tidewatch/tidewatch.toml"]
+    assert app["build"]["dockerfile"] == "deploy/Dockerfile"
+    assert app["environment"]["TIDEWATCH_KAFKA_BOOTSTRAP_SERVERS"] == "kafka:9092"
     assert app["depends_on"]["kafka"]["condition"] == "service_healthy"
     assert "healthcheck" in app
 
