@@ -1,28 +1,32 @@
 """One online model per service: score a closed window, decide the alert state, then learn.
 
-The pieces (``ModelSettings.kind`` chooses which scorers take part):
+The pieces (``ModelSettings.kind`` chooses how the window's tail probability ``p`` is found):
 
 * a :class:`~models.seasonal.SeasonalBaseline` per service predicts every feature (level, or
   hour-of-day / hour-of-week profile when the service has such cycles) and turns each window
   into per-feature evidence on the normal scale: deviation ``z``, first difference ``change``,
-  and ``stuck`` (a value repeated by a feature that rarely repeats). It also gives the
-  contributors, for every kind;
-* ``"adaptive_baseline"``: raw score from the features' ``max(|z|, stuck)`` (see below);
-* ``"half_space_trees"``: raw score = half-space trees (:class:`~models.hst.HalfSpaceTrees`)
-  over two coordinates per feature, ``0.5 + 0.5 * tanh(z / 3)`` and the same of ``change``: the
-  baseline-normalised level and change of a single metric are already in [0, 1] however its
-  range drifts, and a jump lands near 0 or 1. The trees' feature set is the first window's;
-* ``"combined"`` (default): both are kept up to date, and the baseline's tail probability
-  decides (see the comment in :meth:`ServiceModel.assess` for the measurement behind that).
+  and ``stuck`` (a value repeated by a feature that rarely repeats), with each feature's own
+  tail probability ``Evidence.p`` (a normal tail widened by the extremes that feature has
+  produced before). It gives the contributors for every kind;
+* ``"adaptive_baseline"`` and ``"combined"`` (default): ``p = min(1, F * min_f p_f)`` over the
+  ``F`` scorable features (Bonferroni): the per-feature tails are the service's calibration, so
+  the same score means the same rarity on every service, whatever its metrics. Raw score: the
+  normal deviate of ``min_f p_f`` (two-sided);
+* ``"half_space_trees"``: half-space trees (:class:`~models.hst.HalfSpaceTrees`) over two
+  coordinates per feature, ``0.5 + 0.5 * tanh(z / 3)`` and the same of ``change`` -- the
+  baseline-normalised level and change of a metric are in [0, 1] however its range drifts, and
+  a jump lands near 0 or 1; raw score = the trees' score, ``p`` = its tail probability among the
+  service's last ``calibration_history`` raw scores (:class:`~models.calibration.TailCalibrator`).
+  The trees' feature set is the first window's.
 
-Each raw score becomes a tail probability ``p`` among the service's own recent raw scores
-(:class:`~models.calibration.TailCalibrator`: empirical in the bulk, an exponential tail fitted
-beyond it), never below the most unusual feature's own tail probability; the calibrated score
-is ``1 - sqrt(p)``: the same score means the same rarity on every service, whatever its metrics.
-At the default threshold 0.99 a window must be rarer than 1 in 10 000 of the service's own
-windows to open an alert. The baseline's raw score is the normal deviate of the smallest
-per-feature tail probability (:attr:`~models.seasonal.Evidence.p`), so a feature whose
-deviations are routinely huge counts for less than a quiet one that moves.
+``"combined"`` used to add the trees to the baseline. Measured on the NAB development slice
+(BENCHMARKS.md), every way of letting the trees open alerts that was tried (the smaller of the
+two probabilities, Bonferroni-corrected; or requiring both) lowered the threshold-swept score
+from about 62 to 0-19: on one or two metrics the trees add chance extremes, not incidents. So
+``"combined"`` is, for now, the baseline alone (kept as a name so existing configs keep working).
+
+The calibrated score is ``1 - sqrt(p)`` (:func:`~models.calibration.surprise_score`): at the
+default threshold 0.99 a window must be rarer than 1 in 10 000 to open an alert.
 
 Alert state (``Assessment.anomalous``), with hysteresis:
 
@@ -55,14 +59,14 @@ Examples
 >>> result.warming_up, result.anomalous
 (False, False)
 >>> result = model.assess({"latency_p95_ms.mean": 450.0, "count": 13.0}, at=1772409600.0 + 300.0 * 300)
->>> result.anomalous, result.score
+>>> result.anomalous, round(result.score, 6)
 (True, 1.0)
 >>> top = result.contributors[0]
 >>> top.feature, top.observed, round(top.expected, 1), round(top.deviation, 1)
-('latency_p95_ms.mean', 450.0, 202.1, 32.3)
+('latency_p95_ms.mean', 450.0, 202.1, 35.2)
 >>> [model.assess({"latency_p95_ms.mean": 201.0 + i, "count": 12.0 + i % 3},
 ...               at=1772409600.0 + 300.0 * (301 + i)).anomalous for i in range(4)]
-[True, True, False, False]
+[True, False, False, False]
 """
 
 from __future__ import annotations
@@ -145,7 +149,7 @@ class ServiceModel:
     """
 
     __slots__ = ("service", "settings", "kind", "windows_seen", "_baseline", "_trees",
-                 "_cal_baseline", "_cal_trees", "_alert_on", "_alert_len", "_calm",
+                 "_cal_trees", "_alert_on", "_alert_len", "_calm",
                  "_shift", "_shift_n", "_last_at")
 
     def __init__(self, service: str, settings: ModelSettings) -> None:
@@ -158,10 +162,8 @@ class ServiceModel:
         self.kind = settings.kind
         self.windows_seen = 0
         self._baseline = SeasonalBaseline(settings.half_life)
-        uses_baseline = self.kind in ("adaptive_baseline", "combined")
-        uses_trees = self.kind in ("half_space_trees", "combined")
+        uses_trees = self.kind == "half_space_trees"
         history = settings.calibration_history
-        self._cal_baseline = TailCalibrator(history) if uses_baseline else None
         self._trees = (HalfSpaceTrees(settings.trees, settings.height, settings.mass_window,
                                       seed=service_seed(service, settings.seed))
                        if uses_trees else None)
@@ -205,35 +207,26 @@ class ServiceModel:
         evidence = baseline.compare(idx, values, at)
         contributors = self._contributors(names, values, evidence)
 
-        p_b = p_t = 1.0
-        raw_b = raw_t = 0.0
-        ready_b = ready_t = False
-        if self._cal_baseline is not None:
-            p_min = min((e.p for e in evidence if e.scorable), default=1.0)
-            ready_b = any(e.scorable for e in evidence)
-            raw_b = tail_deviate(0.5 * p_min)
-            if ready_b:
-                import os
-                if os.environ.get("TWQ_BONF"):
-                    p_b = min(1.0, sum(e.scorable for e in evidence) * p_min)
-                else:
-                    p_b = max(self._cal_baseline.p_value(raw_b), p_min)
+        p = 1.0
+        raw = 0.0
         path = None
-        if self._trees is not None:
+        ready_t = False
+        if self._trees is None:
+            # Baseline kinds: each feature's own tail probability, Bonferroni-corrected for the
+            # number of features compared (the window is as rare as its rarest feature, times
+            # the number of chances it had to be that rare).
+            p_min = min((e.p for e in evidence if e.scorable), default=1.0)
+            scorable = sum(e.scorable for e in evidence)
+            p = min(1.0, scorable * p_min)
+            raw = tail_deviate(0.5 * p_min)
+        else:
             path = self._tree_path(names, evidence)
             if path is not None:
                 ready_t = self._trees.ready
-                raw_t = self._trees._score_path(path)
+                raw = self._trees._score_path(path)
                 if ready_t:
-                    p_t = self._cal_trees.p_value(raw_t)
-        # Combined: the baseline's probability decides. Measured on the NAB development slice
-        # (BENCHMARKS.md), letting the trees open alerts (Bonferroni minimum, or requiring both)
-        # cut the swept score from about 56 to about 19: on one or two metrics the trees add
-        # chance extremes, not incidents. They still learn and are reported in ``raw`` when the
-        # kind is "half_space_trees".
-        p = p_b if self._cal_baseline is not None else p_t
+                    p = self._cal_trees.p_value(raw)
         score = surprise_score(p)
-        raw = raw_t if self.kind == "half_space_trees" else raw_b
 
         warming_up = self.windows_seen < self.settings.warm_up
         self.windows_seen += 1
@@ -247,13 +240,10 @@ class ServiceModel:
             baseline.learn_tail([i for i, st in zip(idx, strengths) if st >= 0.0],
                                 [st for st in strengths if st >= 0.0])
         baseline.update(idx, values, at, learn=learn, strengths=strengths)
-        if learn:
-            if path is not None:
-                self._trees._learn_path(path)
-            if ready_b:
-                self._cal_baseline.learn(raw_b)
+        if learn and path is not None:
+            self._trees._learn_path(path)
             if ready_t:
-                self._cal_trees.learn(raw_t)
+                self._cal_trees.learn(raw)
         return Assessment(score, raw, anomalous, warming_up, contributors)
 
     def _decide(self, score: float, warming_up: bool, idx: list[int], values: list[float],
@@ -329,10 +319,7 @@ class ServiceModel:
             "windows_seen": self.windows_seen,
             "baseline": self._baseline.to_state(),
             "trees": opt(self._trees),
-            "calibration": {
-                "baseline": opt(self._cal_baseline),
-                "trees": opt(self._cal_trees),
-            },
+            "calibration": {"trees": opt(self._cal_trees)},
             "alert": {
                 "on": self._alert_on,
                 "length": self._alert_len,
@@ -365,11 +352,8 @@ class ServiceModel:
             model.windows_seen = windows_seen
             model._baseline = cls._restore(SeasonalBaseline, state["baseline"], model._baseline)
             model._trees = cls._restore(HalfSpaceTrees, state["trees"], model._trees)
-            calibration = state["calibration"]
-            for key in ("baseline", "trees"):
-                attr = f"_cal_{key}"
-                setattr(model, attr, cls._restore(TailCalibrator, calibration[key],
-                                                  getattr(model, attr)))
+            model._cal_trees = cls._restore(TailCalibrator, state["calibration"]["trees"],
+                                            model._cal_trees)
             alert = state["alert"]
             on, length, calm, shift_n = alert["on"], alert["length"], alert["calm"], alert["shift_n"]
             if not isinstance(on, bool) or any(isinstance(v, bool) or not isinstance(v, int) or v < 0

@@ -59,7 +59,8 @@ class ModelSettings:
         ``"half_space_trees"``, ``"adaptive_baseline"`` or ``"combined"`` (both, see
         :func:`models.build_model`).
     threshold
-        Calibrated score at or above which a warmed-up window is anomalous, in (0, 1].
+        Calibrated score at or above which a warmed-up window opens an alert, in (0, 1]; the
+        score is ``1 - sqrt(p)`` for the window's tail probability ``p``, so 0.99 is ``p <= 1e-4``.
     warm_up
         Number of windows that are learned before any window can be flagged.
     trees, height, mass_window
@@ -74,13 +75,15 @@ class ModelSettings:
         Non-negative integer combined with a stable hash of the service name.
     exit_level
         Alert hysteresis: once alerting, a window scoring at least ``min(exit_level,
-        threshold)`` is not calm; in (0, 1]. The default 0.9 is a tail probability of 1 % (see
-        :data:`models.calibration.SCORE_POWER`): far below the entry level, so an incident whose
-        score wobbles around the threshold stays one alert.
+        threshold)`` is not calm; in (0, 1]. The default 0.95 is a tail probability of 0.25 %
+        (see :data:`models.calibration.SCORE_POWER`), 25 times likelier than the entry level:
+        an incident whose score wobbles just under the threshold stays one alert.
     calm_windows
         Alert hysteresis: the alert clears at the ``calm_windows``-th calm window in a row, so
-        every alert lasts at least that long. The default 3 (15 minutes of five-minute windows)
-        bridges a brief lull inside one incident without holding a recovered service for long.
+        every alert lasts at least that long. The default 2 (10 minutes of five-minute windows)
+        bridges a single quiet window inside an incident; on the NAB development slice each
+        extra held window cost about 3 points of the emitted-flag score (every flagged row after
+        an anomaly window is charged), and 2 gave the same demo onsets as 3.
     adapt_after
         An alert still on after this many windows is taken as a new normal: the baseline moves
         to the level seen during the alert, learning resumes and the alert clears. While an alert
@@ -100,8 +103,8 @@ class ModelSettings:
     half_life: float = 24.0
     calibration_history: int = 1000
     seed: int = 0
-    exit_level: float = 0.9
-    calm_windows: int = 3
+    exit_level: float = 0.95
+    calm_windows: int = 2
     adapt_after: int = 36
 
     def __post_init__(self) -> None:

@@ -194,7 +194,7 @@ def test_to_state_holds_only_plain_values_and_arrays() -> None:
 
 
 def test_inconsistent_states_are_corrupt() -> None:
-    model = build_model("ticket-api", settings("combined"))
+    model = build_model("ticket-api", settings("half_space_trees"))
     run(model, windows(12, 50))
     good = model.to_state()
     other = build_model("ticket-api", settings("adaptive_baseline")).to_state()
@@ -204,6 +204,9 @@ def test_inconsistent_states_are_corrupt() -> None:
         {**good, "trees": None},
         {**good, "calibration": other["calibration"]},
         {**good, "windows_seen": -1},
+        {**good, "alert": {**good["alert"], "on": 1}},
+        {**good, "alert": {**good["alert"], "shift_at": np.array([99], dtype=np.int64),
+                           "shift": np.zeros((1, 3))}},
         {**good, "format": 99},
         {k: v for k, v in good.items() if k != "baseline"},
     ]
