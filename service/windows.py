@@ -18,8 +18,8 @@ Timeline for L = 60 s, D = 10 s::
 (True, True)
 >>> sw.add("api", 71.0, {"x": 5.0}, 60.0, 10.0)
 True
->>> [(s, w.start, w.count, w.aggs["x"]) for s, w in sw.pop_closed()]
-[('api', 0.0, 2, [2, 4.0, 1.0, 3.0, 3.0])]
+>>> [(s, w.start, w.count, w.aggregate("x")["mean"]) for s, w in sw.pop_closed()]
+[('api', 0.0, 2, 2.0)]
 >>> sw.add("api", 58.0, {"x": 1.0}, 60.0, 10.0)
 False
 """
@@ -46,29 +46,44 @@ class FeatureSpec:
     def is_exact(self) -> bool:
         return self.metric_glob is not None and not any(c in self.metric_glob for c in "*?[")
 
-# Per-metric aggregate slots: [count, sum, min, max, last]
-_COUNT, _SUM, _MIN, _MAX, _LAST = range(5)
 
 
 class Window:
-    """The partial aggregates of one (service, window)."""
+    """One open (service, window): its message count and, per metric, the values seen in arrival order.
 
-    __slots__ = ("start", "end", "count", "aggs")
+    ``aggregate(metric)`` gives count, sum, mean, min, max and last of a metric.
+    """
+
+    __slots__ = ("start", "end", "count", "values")
 
     def __init__(self, start: float, end: float) -> None:
         self.start = start
         self.end = end
         self.count = 0
-        self.aggs: dict[str, list] = {}
+        self.values: dict[str, list] = {}
+
+    def aggregate(self, metric: str) -> dict[str, float] | None:
+        """The aggregates of one metric, or None when no message carried it.
+
+        >>> w = Window(0.0, 60.0); w.values = {"x": [1, 3.0, 2]}
+        >>> w.aggregate("x")
+        {'count': 3.0, 'sum': 6.0, 'mean': 2.0, 'min': 1.0, 'max': 3.0, 'last': 2.0}
+        """
+        v = self.values.get(metric)
+        if not v:
+            return None
+        total = float(sum(v))
+        return {"count": float(len(v)), "sum": total, "mean": total / len(v), "min": float(min(v)),
+                "max": float(max(v)), "last": float(v[-1])}
 
     def to_state(self) -> list:
-        return [self.start, self.end, self.count, self.aggs]
+        return [self.start, self.end, self.count, self.values]
 
     @classmethod
     def from_state(cls, state: list) -> "Window":
         w = cls(float(state[0]), float(state[1]))
         w.count = int(state[2])
-        w.aggs = {str(k): [int(v[0]), float(v[1]), float(v[2]), float(v[3]), float(v[4])] for k, v in state[3].items()}
+        w.values = {str(k): [float(x) for x in v] for k, v in state[3].items()}
         return w
 
 
@@ -106,19 +121,15 @@ class SourceWindows:
             heapq.heappush(self._heap, (close_at, service, start))
         window.count += 1
         self.touched.add(service)
-        aggs = window.aggs
+        values = window.values
+        # Appending is the cheapest per-message work; count, sum, mean, min, max and last are
+        # computed once, when the window closes (C-level len/sum/min/max over the list).
         for name, value in metrics.items():
-            agg = aggs.get(name)
-            if agg is None:
-                aggs[name] = [1, value, value, value, value]
+            seen = values.get(name)
+            if seen is None:
+                values[name] = [value]
             else:
-                agg[0] += 1
-                agg[1] += value
-                if value < agg[2]:
-                    agg[2] = value
-                if value > agg[3]:
-                    agg[3] = value
-                agg[4] = value
+                seen.append(value)
         if ts > self.high_mark:
             self.high_mark = ts
         return True
@@ -204,29 +215,29 @@ def feature_names(metric: str, aggregate: str) -> str:
     return name
 
 
-def _value(agg: list, aggregate: str) -> float:
+def _value(values: list, aggregate: str) -> float:
     if aggregate == "mean":
-        return agg[_SUM] / agg[_COUNT]
+        return float(sum(values)) / len(values)
     if aggregate == "sum":
-        return float(agg[_SUM])
+        return float(sum(values))
     if aggregate == "min":
-        return float(agg[_MIN])
+        return float(min(values))
     if aggregate == "max":
-        return float(agg[_MAX])
+        return float(max(values))
     if aggregate == "last":
-        return float(agg[_LAST])
-    return float(agg[_COUNT])  # "count": how many messages carried this metric
+        return float(values[-1])
+    return float(len(values))  # "count": how many messages carried this metric
 
 
 def window_features(window: Window, specs: tuple) -> dict[str, float]:
     """The feature mapping of a closed window under a rule's feature specs.
 
-    >>> w = Window(0.0, 60.0); w.count = 2; w.aggs = {"x": [2, 4.0, 1.0, 3.0, 3.0]}
+    >>> w = Window(0.0, 60.0); w.count = 2; w.values = {"x": [1.0, 3.0]}
     >>> window_features(w, (FeatureSpec("*", "mean"), FeatureSpec("x", "max"), FeatureSpec(None, "count")))
     {'x.mean': 2.0, 'x.max': 3.0, 'count': 2.0}
     """
     out: dict[str, float] = {}
-    aggs = window.aggs
+    aggs = window.values
     for spec in specs:
         glob = spec.metric_glob
         if glob is None:
