@@ -88,7 +88,17 @@ class ModelParams(_Frozen):
         None, gt=0, le=1e6, description="Adaptive baseline: half-life of the exponential weights, in windows."
     )
     calibration_history: int | None = Field(
-        None, ge=10, le=100_000, description="How many past raw scores calibrate a new one."
+        None, ge=10, le=100_000, description="Half-space trees: how many past raw scores calibrate a new one."
+    )
+    exit_level: float | None = Field(
+        None, gt=0, le=1, description="An open alert stays open while the score is at least this (hysteresis)."
+    )
+    calm_windows: int | None = Field(
+        None, ge=1, le=10_000, description="Calm windows in a row that clear an open alert."
+    )
+    adapt_after: int | None = Field(
+        None, ge=1, le=1_000_000,
+        description="An alert still open after this many windows is taken as the new normal (a level shift).",
     )
 
 
@@ -287,7 +297,8 @@ class ServiceSettings:
         return (
             f"{rule}: window {format_duration(self.window)}, lateness {format_duration(self.lateness)}, "
             f"model {m.kind} (trees {m.trees}, height {m.height}, mass_window {m.mass_window}, "
-            f"half_life {m.half_life:g}, calibration_history {m.calibration_history}), "
+            f"half_life {m.half_life:g}, calibration_history {m.calibration_history}, exit_level {m.exit_level:g}, "
+            f"calm_windows {m.calm_windows}, adapt_after {m.adapt_after}), "
             f"threshold {m.threshold:g}, warm_up {m.warm_up}, seed {m.seed}, features [{feats}]"
         )
 
