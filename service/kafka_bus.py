@@ -190,7 +190,7 @@ class KafkaRunner:
     def _ensure_topics(self) -> None:
         k = self.k
         admin = AdminClient(_common(k))
-        md = admin.list_topics(timeout=_CALL_TIMEOUT)
+        md = self._metadata(admin)
         counts = set()
         for t in k.input_topics:
             if t not in md.topics or md.topics[t].error is not None:
@@ -221,7 +221,7 @@ class KafkaRunner:
                         raise TidewatchError(f"cannot create topic {t!r}: {exc}") from exc
         elif missing:
             raise TidewatchError(f"topics {missing} do not exist and create_topics is false")
-        md = admin.list_topics(timeout=_CALL_TIMEOUT)
+        md = self._metadata(admin)
         state_parts = len(md.topics[k.changelog_topic].partitions) if k.changelog_topic in md.topics else n
         scoring_parts = n if k.input_keyed else len(md.topics[k.repartition_topic].partitions)
         if state_parts != scoring_parts:
@@ -229,6 +229,21 @@ class KafkaRunner:
                 f"changelog topic {k.changelog_topic!r} has {state_parts} partitions but the scoring topic has "
                 f"{scoring_parts}; they must be equal (partition p of the changelog holds partition p's services)"
             )
+
+    def _metadata(self, admin: AdminClient):
+        """Cluster metadata, asked in short tries so librdkafka's log lines (a TLS handshake that
+        fails, a refused connection) are served to the log between them and a stop request is heard."""
+        deadline = time.monotonic() + _CALL_TIMEOUT
+        while True:
+            try:
+                return admin.list_topics(timeout=1.0)
+            except KafkaException as exc:
+                admin.poll(0)
+                if self.stop.is_set():
+                    raise _Stopped() from exc
+                if time.monotonic() > deadline:
+                    raise TidewatchError(f"no answer from the brokers {self.k.bootstrap_servers} within "
+                                         f"{_CALL_TIMEOUT:.0f} s (see the librdkafka log lines above): {exc}") from exc
 
     # --- callbacks from the engine (inside a transaction) ----------------------------------
     def _produce(self, topic: str, value: bytes, key: bytes | None = None, partition: int | None = None,
@@ -701,7 +716,11 @@ class KafkaRunner:
 
     def run(self) -> None:
         k = self.k
-        self._ensure_topics()
+        try:
+            self._ensure_topics()
+        except _Stopped:
+            log.info("stopped before the brokers answered", extra={"event": "stopped"})
+            return
         try:
             self.producer = Producer(producer_settings(k, self.instance))
             self.consumer = Consumer(consumer_settings(k))

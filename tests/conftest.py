@@ -4,7 +4,7 @@ from pathlib import Path
 
 import pytest
 
-pytest_plugins = ["tests.kafka_broker"]
+pytest_plugins = ["tests.kafka_broker", "tests.kafka_tls"]
 
 REPO = Path(__file__).resolve().parent.parent
 

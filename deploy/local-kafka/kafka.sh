@@ -18,6 +18,11 @@
 #   TIDEWATCH_KAFKA_HOME             cache dir (default <repo>/.cache/kafka)
 #   TIDEWATCH_KAFKA_PORT             client port on 127.0.0.1 (default 19092)
 #   TIDEWATCH_KAFKA_CONTROLLER_PORT  controller port (default client port + 1)
+#   TIDEWATCH_KAFKA_TLS_PORT         opt-in: also listen with TLS (an SSL listener) on this
+#                                    port; unset, the default, means no TLS listener at all
+#   TIDEWATCH_KAFKA_TLS_KEYSTORE     PKCS12 keystore with the broker's key and certificate
+#   TIDEWATCH_KAFKA_TLS_TRUSTSTORE   PKCS12 truststore (optional; only used for client certificates)
+#   TIDEWATCH_KAFKA_TLS_PASSWORD     password of both stores (throwaway test stores only)
 #   TIDEWATCH_KAFKA_START_TIMEOUT    seconds to wait for readiness (default 90)
 #   TIDEWATCH_KAFKA_STOP_TIMEOUT     seconds between SIGTERM and SIGKILL (default 30)
 #   TIDEWATCH_KAFKA_HEAP             JVM heap flags (default "-Xms128m -Xmx512m")
@@ -42,6 +47,8 @@ LOG4J_CONFIG="$HERE/log4j2.xml"
 HOST=127.0.0.1
 PORT="${TIDEWATCH_KAFKA_PORT:-19092}"
 CONTROLLER_PORT="${TIDEWATCH_KAFKA_CONTROLLER_PORT:-}"  # default PORT + 1, set by check_ports
+# Opt-in TLS listener; empty keeps the broker exactly as it is without it.
+TLS_PORT="${TIDEWATCH_KAFKA_TLS_PORT:-}"
 START_TIMEOUT="${TIDEWATCH_KAFKA_START_TIMEOUT:-90}"
 STOP_TIMEOUT="${TIDEWATCH_KAFKA_STOP_TIMEOUT:-30}"
 # A test broker holds a handful of small topics; 512 MiB is plenty and leaves the
@@ -70,6 +77,15 @@ check_ports() {
     [[ -n "$CONTROLLER_PORT" ]] || CONTROLLER_PORT=$((10#$PORT + 1))
     is_port "$CONTROLLER_PORT" || die "controller port '$CONTROLLER_PORT' is not a TCP port number"
     [[ "$PORT" != "$CONTROLLER_PORT" ]] || die "client and controller port are both $PORT"
+    if [[ -n "$TLS_PORT" ]]; then
+        is_port "$TLS_PORT" || die "TIDEWATCH_KAFKA_TLS_PORT='$TLS_PORT' is not a TCP port number"
+        [[ "$TLS_PORT" != "$PORT" && "$TLS_PORT" != "$CONTROLLER_PORT" ]] ||
+            die "TLS port $TLS_PORT is also the client or controller port"
+        [[ -n "${TIDEWATCH_KAFKA_TLS_KEYSTORE:-}" ]] ||
+            die "TIDEWATCH_KAFKA_TLS_PORT is set but TIDEWATCH_KAFKA_TLS_KEYSTORE is not"
+        [[ -n "${TIDEWATCH_KAFKA_TLS_PASSWORD:-}" ]] ||
+            die "TIDEWATCH_KAFKA_TLS_PORT is set but TIDEWATCH_KAFKA_TLS_PASSWORD is not"
+    fi
 }
 
 # --- process bookkeeping ---------------------------------------------------
@@ -149,11 +165,38 @@ cmd_fetch() {
 
 # --- configuration ---------------------------------------------------------
 
-# Listener layout in one place. To add a listener (e.g. TLS on another port),
-# append to these three lists and add its ssl.* settings in write_properties.
-listeners() { printf 'PLAINTEXT://%s:%s,CONTROLLER://%s:%s' "$HOST" "$PORT" "$HOST" "$CONTROLLER_PORT"; }
-advertised_listeners() { printf 'PLAINTEXT://%s:%s' "$HOST" "$PORT"; }
-protocol_map() { printf 'PLAINTEXT:PLAINTEXT,CONTROLLER:PLAINTEXT'; }
+# Listener layout in one place. The SSL listener is appended only when
+# TIDEWATCH_KAFKA_TLS_PORT is set; its ssl.* settings come from tls_properties.
+listeners() {
+    printf 'PLAINTEXT://%s:%s,CONTROLLER://%s:%s' "$HOST" "$PORT" "$HOST" "$CONTROLLER_PORT"
+    [[ -z "$TLS_PORT" ]] || printf ',SSL://%s:%s' "$HOST" "$TLS_PORT"
+}
+advertised_listeners() {
+    printf 'PLAINTEXT://%s:%s' "$HOST" "$PORT"
+    [[ -z "$TLS_PORT" ]] || printf ',SSL://%s:%s' "$HOST" "$TLS_PORT"
+}
+protocol_map() {
+    printf 'PLAINTEXT:PLAINTEXT,CONTROLLER:PLAINTEXT'
+    [[ -z "$TLS_PORT" ]] || printf ',SSL:SSL'
+}
+
+# ssl.* settings of the opt-in SSL listener (nothing when it is off). Clients
+# check the broker's certificate; the broker asks none of them (ssl.client.auth
+# keeps its default, none). PLAINTEXT stays the inter-broker and probe listener.
+tls_properties() {
+    [[ -n "$TLS_PORT" ]] || return 0
+    printf '\n# --- opt-in TLS listener (TIDEWATCH_KAFKA_TLS_PORT) ---\n'
+    printf '# PKCS12 stores made by the caller (the tests make a throwaway CA with openssl).\n'
+    printf 'ssl.keystore.type=PKCS12\n'
+    printf 'ssl.keystore.location=%s\n' "$TIDEWATCH_KAFKA_TLS_KEYSTORE"
+    printf 'ssl.keystore.password=%s\n' "$TIDEWATCH_KAFKA_TLS_PASSWORD"
+    printf 'ssl.key.password=%s\n' "$TIDEWATCH_KAFKA_TLS_PASSWORD"
+    if [[ -n "${TIDEWATCH_KAFKA_TLS_TRUSTSTORE:-}" ]]; then
+        printf 'ssl.truststore.type=PKCS12\n'
+        printf 'ssl.truststore.location=%s\n' "$TIDEWATCH_KAFKA_TLS_TRUSTSTORE"
+        printf 'ssl.truststore.password=%s\n' "$TIDEWATCH_KAFKA_TLS_PASSWORD"
+    fi
+}
 
 render_properties() {
     {
@@ -213,6 +256,7 @@ group.min.session.timeout.ms=1000
 # move past the open transaction, so check every second instead.
 transaction.abort.timed.out.transaction.cleanup.interval.ms=1000
 EOF
+        tls_properties
         if [[ -n "${TIDEWATCH_KAFKA_EXTRA_PROPERTIES:-}" ]]; then
             [[ -f "$TIDEWATCH_KAFKA_EXTRA_PROPERTIES" ]] ||
                 die "TIDEWATCH_KAFKA_EXTRA_PROPERTIES=$TIDEWATCH_KAFKA_EXTRA_PROPERTIES is not a file"
@@ -364,7 +408,7 @@ cmd_start() {
     fi
     rm -f "$PID_FILE"
     local p
-    for p in "$PORT" "$CONTROLLER_PORT"; do
+    for p in "$PORT" "$CONTROLLER_PORT" ${TLS_PORT:+"$TLS_PORT"}; do
         if port_in_use "$p"; then
             die "something already listens on $HOST:$p (another broker? 'ss -ltnp' shows who); set TIDEWATCH_KAFKA_PORT to use other ports"
         fi
