@@ -25,7 +25,7 @@ from typing import Any, BinaryIO
 from service.checkpoint import CheckpointStore
 from service.config import Config
 from service.engine import Engine
-from service.errors import OutputError, StateStoreError
+from service.errors import StateStoreError
 from service.httpserver import MetricsServer
 from service.metrics import build_registry
 from service.sinks import LineSink, encode_reject
@@ -341,9 +341,8 @@ def run_embedded(config: Config, opts: RunOptions, stop: threading.Event) -> Run
             # The input ended: every open window is final.
             engine.flush(src)
         checkpoint()
-    except OutputError:
-        # Nothing past the last checkpoint is acknowledged: the next start resumes there.
-        raise
+    # An OutputError propagates (exit 1) without a checkpoint: nothing past the last checkpoint is
+    # acknowledged, and the next start resumes there.
     finally:
         if server is not None:
             server.stop()
