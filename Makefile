@@ -22,8 +22,9 @@ $(STAMP_TEST): $(STAMP_RUN)
 demo: $(STAMP_RUN)
 	$(BIN)/tidewatch demo --out-dir demo-output
 
-## test: install the test extras and run the whole suite (starts a local Kafka broker when needed)
+## test: install the test extras and the system tools, run the whole suite (starts a local Kafka broker)
 test: $(STAMP_TEST)
+	bash .ci/system-deps
 	$(BIN)/python -m pytest
 
 ## test-fast: the suite without the tests that need a broker
