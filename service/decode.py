@@ -25,7 +25,9 @@ bad_metric_value
 
 from __future__ import annotations
 
+import json
 import math
+import re
 import time
 from collections.abc import Callable
 from datetime import datetime, timezone
@@ -52,7 +54,8 @@ REASONS: dict[str, str] = {
     "missing_metrics": "the message has no 'metrics' field",
     "bad_metrics": "'metrics' is not a non-empty object within limits.max_metrics",
     "bad_metric_value": "a metric value is not a finite number",
-    "bad_labels": "'labels' is not an object",
+    "bad_labels": "'labels' is not a flat object of strings, numbers, booleans or nulls",
+    "duplicate_key": "an object in the message names the same key twice (JSON leaves the meaning open)",
     "unaligned_key": "the service's messages arrive on more than one input partition (key input by service, or turn on repartitioning)",
     "service_limit": "a new service arrived while the process already tracks limits.max_services services",
     "late": "the event's window had already closed when it arrived (its time is behind the watermark)",
@@ -62,6 +65,30 @@ REASONS: dict[str, str] = {
 # a device with an unset clock reports 1970).
 MIN_EVENT_TS = 946_684_800.0
 _NUMBER_TYPES = frozenset((int, float))
+_LABEL_TYPES = frozenset((str, int, float, bool, type(None)))
+# A key followed by optional whitespace and a colon; a match with whitespace means the raw count of
+# '":' below undercounts the keys, so the exact check has to run.
+_SPACED_KEY = re.compile(rb'"[ \t\r\n]+:')
+
+
+def _refuse_duplicates(pairs: list) -> dict:
+    seen = dict(pairs)
+    if len(seen) != len(pairs):
+        names = [k for k, _ in pairs]
+        dup = next(k for k in names if names.count(k) > 1)
+        raise Rejected("duplicate_key", f"key {dup[:64]!r} appears more than once in one object")
+    return seen
+
+
+def _check_duplicates(raw: bytes) -> None:
+    """The exact (slow) duplicate-key check: the stdlib parser hands over every pair."""
+    try:
+        json.loads(raw, object_pairs_hook=_refuse_duplicates)
+    except RecursionError:  # pragma: no cover - orjson refuses deeper nesting first
+        raise Rejected("not_json", "nested too deeply") from None
+    except ValueError:
+        # orjson took it and the stdlib did not (e.g. a lone surrogate escape): no duplicates to name.
+        pass
 
 
 class Rejected(Exception):
@@ -176,6 +203,16 @@ class NativeDecoder:
                 if vt is not float and vt is not int:
                     raise Rejected("bad_metric_value", f"metric {name[:64]!r} is a {vt.__name__}, not a number")
         labels = obj.get("labels")
-        if labels is not None and type(labels) is not dict:
-            raise Rejected("bad_labels", "'labels' must be an object")
+        keys = len(obj) + len(metrics)
+        if labels is not None:
+            if type(labels) is not dict or not _LABEL_TYPES.issuperset(map(type, labels.values())):
+                raise Rejected("bad_labels", "'labels' must be a flat object of strings, numbers, booleans or nulls")
+            keys += len(labels)
+        # Duplicate keys: orjson keeps the last one silently, which would let two senders' values
+        # of one metric pass as one. Every key in compact or ordinarily indented JSON is written
+        # '"name":', so when that count equals the keys parsed and no key has space before its
+        # colon, no key repeats; otherwise (duplicates, '":' inside a string, other nested objects)
+        # the exact check decides. Two C-level scans per message, no allocation.
+        if raw.count(b'":') != keys or _SPACED_KEY.search(raw) is not None:
+            _check_duplicates(raw)
         return service, ts, metrics

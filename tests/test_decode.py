@@ -54,6 +54,26 @@ CASES = [
     (b'{"service":"s","ts":1772409900,"metrics":{"x":{"y":1}}}', "bad_metric_value"),
     (b'{"service":"s","ts":1772409900,"metrics":{"x":1},"labels":[1]}', "bad_labels"),
     (b'{"service":"s","ts":1772409900,"metrics":{"x":1e999}}', "not_json"),  # orjson refuses out-of-range floats
+    (b'{"service":"s","ts":1772409900,"metrics":{"x":-1e999}}', "not_json"),
+    # NaN and the infinities are not JSON (RFC 8259 section 6), whatever a sender's library writes
+    (b'{"service":"s","ts":NaN,"metrics":{"x":1}}', "not_json"),
+    (b'{"service":"s","ts":1772409900,"metrics":{"x":NaN}}', "not_json"),
+    (b'{"service":"s","ts":1772409900,"metrics":{"x":Infinity}}', "not_json"),
+    (b'{"service":"s","ts":1772409900,"metrics":{"x":-Infinity}}', "not_json"),
+    (b'{"service":"s","ts":"NaN","metrics":{"x":1}}', "bad_ts"),
+    (b'{"service":"s","ts":"2026-13-45T99:00:00Z","metrics":{"x":1}}', "bad_ts"),
+    (b'{"service":"s","ts":946684799,"metrics":{"x":1}}', "ts_out_of_range"),
+    (b'{"service":"s","ts":1772409900,"metrics":{"x":1},"labels":{"a":{"b":{"c":1}}}}', "bad_labels"),
+    (b'{"service":"s","ts":1772409900,"metrics":{"x":1},"labels":{"a":[1]}}', "bad_labels"),
+    (b'{"service":"s","ts":1772409900,"metrics":{"x":1},"labels":' + b'{"a":' * 200 + b'1' + b'}' * 201, "bad_labels"),
+    (b'{"service":"s","ts":1772409900,"metrics":{"x":1},"labels":' + b'[' * 5000 + b']' * 5000 + b'}', "not_json"),
+    # duplicate keys (RFC 8259 section 4: names SHOULD be unique; receivers' behaviour differs)
+    (b'{"service":"s","service":"t","ts":1772409900,"metrics":{"x":1}}', "duplicate_key"),
+    (b'{"service":"s","ts":1772409900,"metrics":{"x":1,"x":2}}', "duplicate_key"),
+    (b'{"service":"s","ts":1772409900,"metrics":{"x":1},"labels":{"a":"1","a":"2"}}', "duplicate_key"),
+    (b'{"service":"s","ts":1772409900,"metrics":{"x":1 , "x" :2}}', "duplicate_key"),
+    (b'{"service":"s","ts":1772409900,"metrics":{"x":1},"extra":{"k":1,"k":2}}', "duplicate_key"),
+    (b'{"service":"s","ts":1772409900,"metrics":{"x\\":":1,"x\\":":2}}', "duplicate_key"),
 ]
 
 
@@ -63,6 +83,42 @@ def test_bad_messages_are_rejected_with_a_stable_reason(raw, code):
         dec().decode(raw)
     assert info.value.code == code
     assert code in REASONS and info.value.detail
+
+
+ACCEPTED_SHAPES = [
+    b'{ "service" : "s", "ts" : 1772409900, "metrics" : { "x" : 1, "y" : 2 } }',
+    b'{\n  "service": "s",\n  "ts": 1772409900,\n  "metrics": {\n    "x": 1,\n    "y": 2\n  }\n}',
+    b'{"service":"s","ts":1772409900,"metrics":{"x":1,"y":2},"labels":{"note":"a\\":b","n":3,"on":true,"z":null}}',
+    b'{"service":"s","ts":1772409900,"metrics":{"x":1,"y":2},"extra":{"k":1,"j":{"k":2}}}',
+]
+
+
+@pytest.mark.parametrize("raw", ACCEPTED_SHAPES)
+def test_unusual_but_valid_layouts_are_accepted(raw):
+    """Whitespace, '":' inside strings and nested extra fields take the exact duplicate check and pass it."""
+    assert dec().decode(raw) == ("s", 1772409900.0, {"x": 1, "y": 2})
+
+
+def test_duplicate_detection_agrees_with_the_stdlib_parser_on_generated_objects():
+    """Reference: Python's json module with object_pairs_hook sees every pair (docs.python.org, json)."""
+    import json
+    import random
+
+    rng = random.Random(7)
+    names = ["a", "b", "c", "a\\\"", "d:e"]
+    for _ in range(2000):
+        keys = [rng.choice(names) for _ in range(rng.randint(1, 4))]
+        sep = rng.choice([":", " :", ": ", "\t:"])
+        metrics = "{" + ",".join(f'{json.dumps(k)}{sep}{i}' for i, k in enumerate(keys)) + "}"
+        raw = ('{"service":"s","ts":1772409900,"metrics":' + metrics + "}").encode()
+        pairs = json.loads(raw, object_pairs_hook=lambda p: p)[2][1]
+        has_dup = len({k for k, _ in pairs}) != len(pairs)
+        try:
+            dec().decode(raw)
+            got = None
+        except Rejected as r:
+            got = r.code
+        assert got == ("duplicate_key" if has_dup else None), raw
 
 
 def test_size_and_metric_count_limits():
