@@ -76,6 +76,6 @@ def encode_reject(code: str, detail: str, raw: bytes, origin: Any) -> bytes:
     try:
         record["raw"] = raw.decode("utf-8").rstrip("\r\n")
     except UnicodeDecodeError:
-        record["raw_b64"] = base64.b64encode(raw).decode("ascii")
+        record["raw_b64"] = base64.b64encode(raw.rstrip(b"\r\n")).decode("ascii")  # the line, as "raw" is
     return orjson.dumps(record)
 
