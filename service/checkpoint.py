@@ -18,10 +18,18 @@ Model payloads are ``models.encode_state`` records, which carry their own format
 version, checksum and optional HMAC; runtime payloads are JSON. A frame or record
 that fails its check is reported, counted, and skipped: that service starts
 fresh; the file is set aside as ``*.corrupt``. Nothing is ever unpickled.
+
+A *torn* segment (one that ends before its trailer: a write cut short) was never a
+committed checkpoint: none of its records is used and it can never stand in for
+the newest base, so the segments before it are restored as they were. A
+temporary file left by a process killed mid-save is removed on the next load.
+A failed save raises :class:`CheckpointSaveError` naming a reason
+(``service.stats.SAVE_FAILURE_REASONS``) and is counted by it; the previous segments stay valid.
 """
 
 from __future__ import annotations
 
+import errno
 import logging
 import os
 import re
@@ -39,7 +47,7 @@ from models.errors import StateError
 from service.errors import StateStoreError
 from service.stats import RuntimeStats
 
-__all__ = ["CheckpointStore", "Restored", "SEGMENT_FORMAT"]
+__all__ = ["CheckpointSaveError", "CheckpointStore", "Restored", "SEGMENT_FORMAT", "save_failure_reason"]
 
 log = logging.getLogger("tidewatch.checkpoint")
 
@@ -50,8 +58,38 @@ _FRAME = struct.Struct("<BII")
 _TRAILER = struct.Struct("<BI")
 _KIND_MODEL, _KIND_RUNTIME, _KIND_END = 1, 2, 0xFF
 _NAME = re.compile(r"^ckpt-(\d{12})\.twc$")
+_TMP_NAME = re.compile(r"^\.ckpt-(\d{12})\.tmp$")
+_NO_SPACE = {errno.ENOSPC, errno.EDQUOT}
+_PERMISSION = {errno.EACCES, errno.EPERM}
 # A new base is written once the deltas since the last base are this many times its size.
 _COMPACT_RATIO = 3.0
+
+
+class CheckpointSaveError(StateStoreError):
+    """A checkpoint could not be written; ``reason`` is one of ``service.stats.SAVE_FAILURE_REASONS``."""
+
+    def __init__(self, message: str, reason: str) -> None:
+        super().__init__(message)
+        self.reason = reason
+
+
+def save_failure_reason(exc: OSError) -> str:
+    """Classify why the state directory refused a write.
+
+    >>> save_failure_reason(OSError(errno.ENOSPC, "No space left on device"))
+    'no_space'
+    >>> save_failure_reason(OSError(errno.EROFS, "Read-only file system"))
+    'read_only'
+    """
+    if exc.errno in _NO_SPACE:
+        reason = "no_space"
+    elif exc.errno == errno.EROFS:
+        reason = "read_only"
+    elif exc.errno in _PERMISSION:
+        reason = "permission"
+    else:
+        reason = "io_error"
+    return reason
 
 
 @dataclass
@@ -82,6 +120,7 @@ class CheckpointStore:
         self.generation = 0
         self._base_bytes = 0
         self._delta_bytes = 0
+        self._base_models = 0  # model records in the newest base
         self._force_base = False  # after a refused record, the next checkpoint rewrites everything
         try:
             self.dir.mkdir(parents=True, exist_ok=True)
@@ -107,15 +146,23 @@ class CheckpointStore:
     def load(self) -> Restored:
         """Read the newest base and every later segment; never raises on bad content."""
         restored = Restored()
+        self._remove_stale_temporaries()
         segments = self._segments()
         parsed: list[tuple[int, Path, bool, list[tuple[int, bytes]], bool]] = []
+        newest = 0
         for gen, path in segments:
+            newest = max(newest, gen)
             try:
                 data = path.read_bytes()
             except OSError as exc:
                 self._refuse(restored, "unreadable", f"{path}: cannot read: {exc}")
                 continue
-            is_base, frames, intact = self._parse(path, data, restored)
+            is_base, frames, intact, torn = self._parse(path, data, restored)
+            if torn:
+                # Never committed: using its records (or letting it be the newest base) would put
+                # models ahead of the saved position, or hide the last good base.
+                self._set_aside(path)
+                continue
             parsed.append((gen, path, is_base, frames, intact))
         start = 0
         for i, item in enumerate(parsed):
@@ -141,29 +188,44 @@ class CheckpointStore:
             sz = sum(len(p) for _, p in frames)
             if is_base:
                 self._base_bytes, self._delta_bytes = sz, 0
+                self._base_models = sum(1 for kind, _ in frames if kind == _KIND_MODEL)
             else:
                 self._delta_bytes += sz
-        self.generation = restored.generation
+        # Past every segment seen, torn ones included, so a new save never reuses a name in doubt.
+        self.generation = max(restored.generation, newest)
         return restored
 
-    def _parse(self, path: Path, data: bytes, restored: Restored) -> tuple[bool, list[tuple[int, bytes]], bool]:
+    def _remove_stale_temporaries(self) -> None:
+        # A process killed mid-save leaves its temporary file; on a full disk it holds the space.
+        for p in self.dir.iterdir():
+            if _TMP_NAME.match(p.name):
+                try:
+                    p.unlink()
+                    log.info("removed an unfinished checkpoint", extra={"event": "state_tmp_removed", "path": str(p)})
+                except OSError:
+                    pass
+
+    def _parse(self, path: Path, data: bytes, restored: Restored) -> tuple[bool, list[tuple[int, bytes]], bool, bool]:
+        """Return (is_base, frames that passed their checks, intact, torn)."""
         frames: list[tuple[int, bytes]] = []
         if len(data) < _HEADER.size:
             self._refuse(restored, "CorruptState", f"{path}: truncated before the header")
-            return False, frames, False
+            return False, frames, False, True
         magic, fmt, flags, _gen = _HEADER.unpack_from(data, 0)
         if magic != _MAGIC:
             self._refuse(restored, "CorruptState", f"{path}: not a tidewatch checkpoint (bad magic)")
-            return False, frames, False
+            return False, frames, False, False
         if fmt > SEGMENT_FORMAT:
             self._refuse(restored, "UnsupportedStateVersion", f"{path}: segment format {fmt} is newer than {SEGMENT_FORMAT}")
-            return False, frames, False
+            return False, frames, False, False
         pos = _HEADER.size
         intact = False
+        torn = True  # until the trailer is reached
         while pos < len(data):
             kind = data[pos]
             if kind == _KIND_END:
                 if pos + _TRAILER.size <= len(data):
+                    torn = False
                     _, crc = _TRAILER.unpack_from(data, pos)
                     intact = crc == zlib.crc32(data[:pos])
                 break
@@ -179,9 +241,11 @@ class CheckpointStore:
                 self._refuse(restored, "CorruptState", f"{path}: a record failed its checksum")
                 continue
             frames.append((kind, payload))
-        if not intact:
-            self._refuse(restored, "CorruptState", f"{path}: the segment is truncated or its checksum does not match")
-        return bool(flags & 1), frames, intact
+        if torn:
+            self._refuse(restored, "CorruptState", f"{path}: the segment is truncated (an unfinished write); none of it is used")
+        elif not intact:
+            self._refuse(restored, "CorruptState", f"{path}: the segment's checksum does not match")
+        return bool(flags & 1), frames, intact, torn
 
     def _set_aside(self, path: Path) -> None:
         target = path.with_name(f"{path.name}.corrupt-{int(time.time())}")
@@ -196,20 +260,26 @@ class CheckpointStore:
         """Write one checkpoint of the ``dirty`` models and the runtime record.
 
         Returns the bytes written. Raises :class:`StateStoreError` when the
-        directory refuses the write; the previous checkpoints stay intact.
+        directory refuses the write (:class:`CheckpointSaveError`, with its reason); the
+        previous checkpoints stay intact and nothing of this one is left behind.
         """
         started = time.perf_counter()
-        base = self._force_base or self.generation == 0 or self._delta_bytes > _COMPACT_RATIO * max(self._base_bytes, 1)
+        # A base without models (a run's first checkpoint, before anything was learned) is replaced by
+        # the first save that has some, so its deltas are not measured against an empty base.
+        base = (self._force_base or self.generation == 0 or (self._base_models == 0 and bool(models))
+                or self._delta_bytes > _COMPACT_RATIO * max(self._base_bytes, 1))
         names = models.keys() if base else sorted(dirty)
         gen = self.generation + 1
         parts = [_HEADER.pack(_MAGIC, SEGMENT_FORMAT, 1 if base else 0, gen)]
         model_bytes = 0
+        n_models = 0
         for service in names:
             model = models.get(service)
             if model is None:
                 continue
             payload = encode_state(service, model, key=self.key)
             model_bytes += len(payload)
+            n_models += 1
             parts.append(_FRAME.pack(_KIND_MODEL, len(payload), zlib.crc32(payload)))
             parts.append(payload)
         rt = orjson.dumps(runtime)
@@ -227,16 +297,19 @@ class CheckpointStore:
             os.replace(tmp, final)
             _fsync_dir(self.dir)
         except OSError as exc:
+            reason = save_failure_reason(exc)
             self.stats.state_save_failures += 1
+            self.stats.state_save_failure_reasons[reason] += 1
             try:
-                tmp.unlink(missing_ok=True)
+                tmp.unlink(missing_ok=True)  # a partial file on a full disk would hold the space
             except OSError:
                 pass
-            raise StateStoreError(f"cannot write checkpoint {final}: {exc}") from exc
+            raise CheckpointSaveError(f"cannot write checkpoint {final} ({reason}): {exc}", reason) from exc
         self.generation = gen
         if base:
             self._force_base = False
             self._base_bytes, self._delta_bytes = model_bytes + len(rt), 0
+            self._base_models = n_models
             for g, p in self._segments():
                 if g < gen:
                     try:

@@ -3,7 +3,8 @@
 Exit codes
 ----------
 0  success
-1  runtime failure (an output or the state directory refused a write, input unreadable)
+1  runtime failure (an output refused a write, e.g. its disk is full; the last checkpoint of a run
+   could not be saved; input unreadable). The next start resumes from the last checkpoint.
 2  usage error or invalid config
 3  fatal message-bus error (e.g. the producer was fenced twice); the orchestrator should restart
 75  (Kafka worker only) a client call stuck past its deadline; the supervising parent restarts the worker
@@ -274,6 +275,13 @@ def build_parser() -> argparse.ArgumentParser:
     return p
 
 
+def _reported(exc: BaseException, args: argparse.Namespace) -> str:
+    """The error's text with secret setting values (a SASL password echoed by a config error) masked."""
+    from service.redact import redact, secret_values
+
+    return redact(str(exc), secret_values(config_path=getattr(args, "config", None) or getattr(args, "file", None)))
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
@@ -281,16 +289,18 @@ def main(argv: Sequence[str] | None = None) -> int:
     try:
         return args.func(args)
     except ConfigError as exc:
-        print(f"tidewatch: {exc}", file=sys.stderr)
+        print(f"tidewatch: {_reported(exc, args)}", file=sys.stderr)
         return EXIT_USAGE
     except BusFatalError as exc:
-        log.critical(str(exc), extra={"event": "bus_fatal"})
+        log.critical(_reported(exc, args), extra={"event": "bus_fatal"})
         return EXIT_BUS_FATAL
     except TidewatchError as exc:
-        log.error(str(exc), extra={"event": "failed"})
+        # OutputError (an output refused a write) and StateStoreError (the last checkpoint failed) land
+        # here: exit 1, and the next start resumes from the last checkpoint.
+        log.error(_reported(exc, args), extra={"event": "failed"})
         return EXIT_FAILURE
     except OSError as exc:
-        log.error(str(exc), extra={"event": "failed"})
+        log.error(_reported(exc, args), extra={"event": "failed"})
         return EXIT_FAILURE
     except KeyboardInterrupt:
         return EXIT_INTERRUPTED

@@ -9,6 +9,16 @@ every open window at the end.
 A restarted ``run`` produces exactly the output of an uninterrupted one when the
 output is a file: on restart the output (and rejects) file is cut back to its
 size at the last checkpoint, and input resumes from the byte offset saved with it.
+
+Faults. A checkpoint that the state directory refuses (read-only, full) is counted
+by reason and logged once per failure episode; scoring and output go on, and the
+next interval tries again with everything still unsaved. The checkpoint at the end
+of a run is the last chance: if it fails, the run ends with
+:class:`~service.errors.StateStoreError` (exit 1) after writing all its output. An
+output that refuses a write (disk full) ends the run at once with
+:class:`~service.errors.OutputError` (exit 1) and no further checkpoint: a
+checkpoint only ever records input offsets whose scores were flushed and fsynced,
+so the next start cuts the output back and redoes the rest exactly once.
 """
 
 from __future__ import annotations
@@ -22,10 +32,10 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, BinaryIO
 
-from service.checkpoint import CheckpointStore
+from service.checkpoint import CheckpointSaveError, CheckpointStore
 from service.config import Config
 from service.engine import Engine
-from service.errors import StateStoreError
+from service.errors import OutputError, StateStoreError
 from service.httpserver import MetricsServer
 from service.metrics import build_registry
 from service.sinks import LineSink, encode_reject
@@ -296,11 +306,16 @@ def run_embedded(config: Config, opts: RunOptions, stop: threading.Event) -> Run
     stats.ready = True
 
     saved_at_offset = -1
+    saved_line = start_line
+    failing: str | None = None  # the reason of the save-failure episode under way, if any
+    failed_attempts = 0
 
-    def checkpoint() -> None:
-        nonlocal saved_at_offset
+    def checkpoint(final: bool = False) -> None:
+        nonlocal saved_at_offset, saved_line, failing, failed_attempts
         if loop.offset() == saved_at_offset and not engine.registry.dirty and in_path:
             return  # nothing new since the last checkpoint
+        # Output first: an OutputError here propagates and nothing of this checkpoint is recorded,
+        # so the saved input offset never runs ahead of scores on disk.
         out_off = scores.sync()
         rej_off = rej.sync() if rej is not None else None
         stats.high_marks[SOURCE_ID] = src.high_mark
@@ -315,11 +330,28 @@ def run_embedded(config: Config, opts: RunOptions, stop: threading.Event) -> Run
         }
         try:
             store.save(engine.registry.models, engine.registry.dirty, runtime)
-            engine.registry.dirty.clear()
-            saved_at_offset = runtime["input"]["offset"]
-        except StateStoreError as exc:
-            # Scoring goes on; the next interval tries again with everything still dirty.
-            log.error("checkpoint failed; will retry", extra={"event": "state_save_failed", "error": str(exc)})
+        except CheckpointSaveError as exc:
+            # Scoring goes on; the next interval tries again with everything still dirty. One log line
+            # per episode (and per change of reason), not one per attempt.
+            failed_attempts += 1
+            if final:
+                raise StateStoreError(
+                    f"the last checkpoint of this run failed ({exc}); the output is complete, and the next start "
+                    f"resumes from the last saved checkpoint (input line {saved_line}) and redoes the rest exactly"
+                ) from exc
+            if failing != exc.reason:
+                failing = exc.reason
+                log.error("checkpoint failed; scoring goes on and each interval tries again",
+                          extra={"event": "state_save_failed", "reason": exc.reason, "error": str(exc),
+                                 "saved_line": saved_line})
+            return
+        engine.registry.dirty.clear()
+        saved_at_offset = runtime["input"]["offset"]
+        saved_line = loop.line
+        if failing is not None:
+            log.warning("checkpoint saved again", extra={"event": "state_save_recovered", "failed_attempts": failed_attempts,
+                                                          "reason": failing})
+            failing, failed_attempts = None, 0
 
     interval = config.state.checkpoint_interval
     next_at = time.monotonic() + interval
@@ -335,22 +367,41 @@ def run_embedded(config: Config, opts: RunOptions, stop: threading.Event) -> Run
             next_at = time.monotonic() + interval
 
     loop.on_idle = on_batch
+    failed = False
     try:
+        if not resume and in_path:
+            # A first checkpoint before any line is read: a run stopped before its first interval
+            # restarts from here (output cut back to its size now) instead of appending it all again.
+            checkpoint()
         loop.pump(on_batch)
         if not stop.is_set():
             # The input ended: every open window is final.
             engine.flush(src)
-        checkpoint()
-    # An OutputError propagates (exit 1) without a checkpoint: nothing past the last checkpoint is
-    # acknowledged, and the next start resumes there.
+        checkpoint(final=True)
+    except OutputError as exc:
+        # Propagates (exit 1) without a checkpoint: nothing past the last checkpoint is acknowledged,
+        # and the next start cuts the output back and resumes there.
+        failed = True
+        raise OutputError(
+            f"{exc}; stopping. Nothing after the last checkpoint (input line {saved_line}) is recorded as done: "
+            f"once the output can be written again, the next start resumes there and writes each score once"
+        ) from exc
+    except BaseException:
+        failed = True
+        raise
     finally:
         if server is not None:
             server.stop()
         if f is not sys.stdin.buffer:
             f.close()
-        scores.close()
-        if rej is not None:
-            rej.close()
+        # After a failure, closing must not raise over the error that ended the run.
+        for sink in (scores, rej):
+            if sink is None:
+                continue
+            if failed:
+                sink.abandon()
+            else:
+                sink.close()
     summary = _summary(engine, loop.line - start_line, started)
     summary.resumed_at_line = start_line
     summary.refused_state = restored.refused

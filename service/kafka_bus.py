@@ -189,7 +189,11 @@ class KafkaRunner:
     # --- set-up ----------------------------------------------------------------------
     def _ensure_topics(self) -> None:
         k = self.k
-        admin = AdminClient(_common(k))
+        try:
+            admin = AdminClient(_common(k))
+        except KafkaException as exc:
+            # The first client made: settings librdkafka refuses (an unknown SASL mechanism) end here.
+            raise ConfigError(f"[kafka] client settings refused by librdkafka: {exc.args[0].str()}") from exc
         md = self._metadata(admin)
         counts = set()
         for t in k.input_topics:

@@ -18,6 +18,7 @@ Metric names (all prefixed ``tidewatch_``; counters end in ``_total``, units in 
 ``state_records_refused_total{kind}``     saved records refused (corrupt, newer format, bad signature)
 ``state_saves_total``                     checkpoints written
 ``state_save_failures_total``             checkpoints that failed
+``state_save_failures_by_reason_total{reason}`` the same by reason: no_space, read_only, permission, io_error
 ``state_save_duration_seconds``           histogram of checkpoint durations
 ``window_close_delay_seconds``            histogram: wall clock from a window's end to its score
 ``score_commit_delay_seconds``            Kafka histogram: window close to its score committed
@@ -39,7 +40,7 @@ from prometheus_client import CollectorRegistry
 from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, HistogramMetricFamily, Metric
 from prometheus_client.registry import Collector
 
-from service.stats import Buckets, RuntimeStats
+from service.stats import SAVE_FAILURE_REASONS, Buckets, RuntimeStats
 
 __all__ = ["RuntimeCollector", "build_registry"]
 
@@ -104,6 +105,12 @@ class RuntimeCollector(Collector):
         yield m
         yield CounterMetricFamily(P + "state_saves", "Checkpoints written.", value=s.state_saves)
         yield CounterMetricFamily(P + "state_save_failures", "Checkpoints that failed.", value=s.state_save_failures)
+        # failed saves by reason, every reason present from the start so rate() works
+        m = CounterMetricFamily(P + "state_save_failures_by_reason", "Checkpoints that failed, by reason.",
+                                labels=["reason"])
+        for reason in SAVE_FAILURE_REASONS:
+            m.add_metric([reason], s.state_save_failure_reasons.get(reason, 0))
+        yield m
         yield _histogram(P + "state_save_duration_seconds", "Time to write one checkpoint.", s.save_seconds)
         yield _histogram(
             P + "window_close_delay_seconds",

@@ -61,7 +61,24 @@ class LineSink:
             self.sync()
         finally:
             if self.is_file:
-                self._f.close()
+                try:
+                    self._f.close()
+                except OSError as exc:
+                    raise OutputError(f"cannot close {self.target}: {exc}") from exc
+
+    def abandon(self) -> None:
+        """Close after a failure, raising nothing: what is buffered may or may not reach the file,
+        which is fine because the next start cuts the file back to its checkpointed size."""
+        if not self.is_file:
+            try:
+                self._f.flush()
+            except (OSError, ValueError):
+                pass
+            return
+        try:
+            self._f.close()
+        except (OSError, ValueError):
+            pass
 
 
 def encode_reject(code: str, detail: str, raw: bytes, origin: Any) -> bytes:

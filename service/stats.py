@@ -35,6 +35,9 @@ class Buckets:
         self.sum += value
 
 
+# why a checkpoint save failed (service.checkpoint classifies the OSError)
+SAVE_FAILURE_REASONS = ("no_space", "read_only", "permission", "io_error")
+
 SAVE_BOUNDS = (0.001, 0.005, 0.01, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0, 30.0)
 COMMIT_BOUNDS = (0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.0, 5.0, 10.0, 30.0)
 # Window close delay spans live runs (sub-second) and replays of old data (days).
@@ -55,6 +58,8 @@ class RuntimeStats:
         self.state_records_refused: Counter[str] = Counter()  # by error kind
         self.state_saves = 0
         self.state_save_failures = 0
+        # failed checkpoint saves by reason (one of SAVE_FAILURE_REASONS)
+        self.state_save_failure_reasons: Counter[str] = Counter()
         self.last_save_seconds = 0.0
         self.save_seconds = Buckets(SAVE_BOUNDS)
         # wall-clock seconds from a window's end to its score being emitted
