@@ -37,6 +37,7 @@ from service.config import Config
 from service.engine import Engine
 from service.errors import OutputError, StateStoreError
 from service.httpserver import MetricsServer
+from service.lines import LineReader
 from service.metrics import build_registry
 from service.sinks import LineSink, encode_reject
 from service.stats import RuntimeStats
@@ -82,29 +83,35 @@ def _open_input(path: str) -> BinaryIO:
 
 
 class _Loop:
-    """Read batches of lines into the engine; shared by run and replay."""
+    """Read batches of lines into the engine; shared by run and replay.
+
+    Lines come through a :class:`~service.lines.LineReader`: a line longer than ``max_line`` is cut to
+    its first ``max_line + 1`` bytes (and so refused as ``too_large``), so no single line, however long
+    or unfinished, can exhaust memory.
+    """
 
     def __init__(self, engine: Engine, src: SourceWindows, f: BinaryIO, *, line: int, follow: bool, stop: threading.Event,
-                 decode_many=None):
+                 decode_many=None, max_line: int, offset: int = 0):
         self.engine = engine
         self.src = src
-        self.f = f
+        self.reader = LineReader(f, max_line=max_line, chunk=_READ_HINT, offset=offset)
         self.line = line
         self.follow = follow
         self.stop = stop
-        self.pending = b""
         self.on_idle = None  # called while following a file that has no new lines
         self.decode_many = decode_many  # OpenTelemetry lines: one payload, many events
 
     def offset(self) -> int:
         """Byte offset just past the last line handed to the engine."""
-        return self.f.tell() - len(self.pending)
+        return self.reader.offset
 
     def batches(self):
-        f = self.f
+        read = self.reader.read_batch
+        # A followed file's last line may be mid-write: it is kept until its line break arrives.
+        final = not self.follow
         while not self.stop.is_set():
-            lines = f.readlines(_READ_HINT)
-            if not lines:
+            lines = read(final=final)
+            if lines is None:
                 if self.follow:
                     self.engine.stats.heartbeat = time.monotonic()
                     if self.on_idle is not None:
@@ -112,19 +119,13 @@ class _Loop:
                     self.stop.wait(0.2)
                     continue
                 return
-            if self.pending:
-                lines[0] = self.pending + lines[0]
-                self.pending = b""
-            if self.follow and not lines[-1].endswith(b"\n"):
-                # A writer is mid-line: keep the fragment until the rest arrives.
-                self.pending = lines.pop()
-                if not lines:
-                    continue
-            yield lines
+            if lines:
+                yield lines
 
     def pump(self, on_batch=None, progress=None) -> None:
         engine = self.engine
         src = self.src
+        done = self.reader.offset
         for lines in self.batches():
             base = self.line
             if self.decode_many is None:
@@ -134,7 +135,8 @@ class _Loop:
             self.line = base + len(lines)
             engine.stats.heartbeat = time.monotonic()
             if progress is not None:
-                progress.advance(sum(map(len, lines)))
+                progress.advance(self.reader.offset - done)
+                done = self.reader.offset
             if on_batch is not None:
                 on_batch()
 
@@ -175,6 +177,11 @@ def _payload_decoder(config: Config, input_format: str):
     return OtlpDecoder("otlp_json", **otlp_settings(config))
 
 
+def _max_line(config: Config, decoder) -> int:
+    """Longest input line kept whole: the size limit of the format the lines are decoded with."""
+    return config.limits.max_message_bytes if decoder is None else decoder.max_message_bytes
+
+
 def otlp_settings(config: Config) -> dict:
     """The OpenTelemetry decoder's settings from the config (the current ones win over saved state)."""
     lim = config.limits
@@ -213,7 +220,8 @@ def replay(config: Config, input_path: str, output: str, rejects: str | None = N
         with _open_input(input_path) as f:
             decoder = _payload_decoder(config, input_format)
             loop = _Loop(engine, src, f, line=0, follow=False, stop=threading.Event(),
-                         decode_many=None if decoder is None else decoder.decode)
+                         decode_many=None if decoder is None else decoder.decode,
+                         max_line=_max_line(config, decoder))
             loop.pump(progress=progress)
         engine.flush(src)
     finally:
@@ -302,7 +310,8 @@ def run_embedded(config: Config, opts: RunOptions, stop: threading.Event) -> Run
     if decoder is not None and resume and "otlp" in rt:
         decoder = type(decoder).from_state(rt["otlp"], **otlp_settings(config))  # cumulative sums carry on exactly
     loop = _Loop(engine, src, f, line=start_line, follow=opts.follow, stop=stop,
-                 decode_many=None if decoder is None else decoder.decode)
+                 decode_many=None if decoder is None else decoder.decode,
+                 max_line=_max_line(config, decoder), offset=int(rt["input"]["offset"]) if resume else 0)
     stats.ready = True
 
     saved_at_offset = -1

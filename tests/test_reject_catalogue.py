@@ -47,3 +47,24 @@ def test_every_catalogue_case_is_counted_routed_and_its_neighbours_scored(tmp_pa
     # the good lines were all windowed and scored: 3 services x 200 events of 30 s in 5-minute windows
     scored = Counter(json.loads(x)["service"] for x in out.read_text().splitlines())
     assert scored == {"svc-0": 20, "svc-1": 20, "svc-2": 20}
+
+
+def test_a_line_of_many_megabytes_without_a_break_is_refused_and_the_next_line_read(tmp_path):
+    """The reader keeps at most max_message_bytes + 1 bytes of a line (service.lines): a 64 MB line with
+    no break costs no more memory than that, is rejected as too_large with how it began, and counted once."""
+    src = tmp_path / "in.jsonl"
+    good = [orjson.dumps({"service": "svc-0", "ts": T0 + i * 30, "metrics": {"lat": 100.0}}) for i in range(40)]
+    with open(src, "wb") as f:
+        f.write(b"\n".join(good[:20]) + b"\n")
+        f.write(b'{"service":"svc-0","pad":"')
+        for _ in range(64):
+            f.write(b"z" * (1 << 20))
+        f.write(b'"}\n')
+        f.write(b"\n".join(good[20:]) + b"\n")
+    out, rej = tmp_path / "scores.jsonl", tmp_path / "rejects.jsonl"
+    summary = replay(parse_config(""), str(src), str(out), str(rej))
+    assert summary.rejected == {"too_large": 1}
+    assert summary.accepted == 40 and summary.lines == 41
+    (r,) = [json.loads(x) for x in rej.read_text().splitlines()]
+    assert r["origin"]["line"] == 21 and r["raw"].startswith('{"service":"svc-0","pad":"zzz')
+    assert len(r["raw"]) == 65_537  # limits.max_message_bytes + 1: enough to show, never the whole line
