@@ -32,6 +32,7 @@ from pydantic import BaseModel, BeforeValidator, ConfigDict, Field, ValidationEr
 
 from models import MODEL_KINDS, ModelSettings
 from service.errors import ConfigError
+from service.redact import MASK, is_secret_name
 from service.timefmt import format_duration, parse_duration
 from service.windows import FeatureSpec
 
@@ -346,6 +347,8 @@ def resolve(config: Config, service: str) -> ServiceSettings:
 def _format_problem(source: str, err: dict[str, Any]) -> str:
     loc = ".".join(str(p) for p in err.get("loc", ())) or "(top level)"
     value = err.get("input")
+    if any(is_secret_name(str(p)) for p in err.get("loc", ())):
+        value = MASK  # a mistyped password is still a password: never echo it
     kind = err.get("type", "")
     msg = err.get("msg", "")
     if kind == "extra_forbidden":
