@@ -163,6 +163,22 @@ class BrokerHandle:
             )
         _run_script("restart", self.env)
 
+    def stop_keeping_data(self) -> None:
+        """Stop the local broker, keeping its data, for an outage test; :meth:`start_again` ends it."""
+        self._need_local("an outage")
+        _run_script("stop", self.env, "--keep-data")
+
+    def start_again(self) -> None:
+        """Start the local broker stopped by :meth:`stop_keeping_data`; wait until it answers."""
+        self._need_local("an outage")
+        _run_script("start", self.env)
+
+    def _need_local(self, what: str) -> None:
+        if not self.restartable:
+            raise BrokerRestartUnavailable(
+                f"{what} needs the local broker (deploy/local-kafka/kafka.sh); this session uses the "
+                f"{self.origin} broker at {self.bootstrap}")
+
     def log_tail(self, lines: int = LOG_TAIL_LINES) -> str:
         """Last ``lines`` lines of the local broker's log ('' when there is none)."""
         path = self.log_file
@@ -195,6 +211,18 @@ def restart_broker() -> None:
     if _active is None:
         raise KafkaBrokerError("restart_broker() needs the kafka_bootstrap fixture first")
     _active.restart()
+
+
+@contextlib.contextmanager
+def broker_outage() -> Iterator[None]:
+    """Stop this session's local broker for the body of the ``with``, then start it again (always)."""
+    if _active is None:
+        raise KafkaBrokerError("broker_outage() needs the kafka_bootstrap fixture first")
+    _active.stop_keeping_data()
+    try:
+        yield
+    finally:
+        _active.start_again()
 
 
 def broker_answers(bootstrap: str, timeout: float = 1.0) -> bool:
