@@ -106,7 +106,10 @@ SQUASH_Z = 3.0
 #: Tree coordinates per feature: the squashed deviation and the squashed change.
 _TREE_PARTS = ("level", "change")
 
-_STATE_FORMAT = 2
+#: Model state format. 3 added the baseline's drift statistics and tail clusters
+#: (:data:`models.seasonal.NEW_IN_FORMAT_3`); a format-2 state still loads, those starting at zero.
+_STATE_FORMAT = 3
+_READABLE_FORMATS = (2, 3)
 
 
 @dataclass(slots=True)
@@ -253,13 +256,14 @@ class ServiceModel:
         anomalous = self._decide(score, warming_up, idx, values, at)
 
         learn = not self._alert_on
-        strengths = [e.strength if e.scorable else -1.0 for e in evidence]
         if anomalous and self._alert_len == 1:
             # The first window of an alert counts once in the features' tails: how often a
             # feature produces alert-sized deviations is what makes a routine one unsurprising.
-            baseline.learn_tail([i for i, st in zip(idx, strengths) if st >= 0.0],
-                                [st for st in strengths if st >= 0.0])
-        baseline.update(idx, values, at, learn=learn, strengths=strengths)
+            baseline.learn_tail(idx, evidence)
+            # The run of deviations that opened the alert is spent: after the alert the drift
+            # starts again from nothing, so one incident does not reopen as a "drift".
+            baseline.reset_drift()
+        baseline.update(idx, values, at, learn=learn, evidence=evidence)
         if learn and path is not None:
             tree_raw = self._trees._score_path(path) if self.kind == "combined" else raw
             self._trees._learn_path(path)
@@ -363,15 +367,17 @@ class ServiceModel:
             The state is malformed or inconsistent with its own settings.
         """
         try:
-            if state["format"] != _STATE_FORMAT:
-                raise CorruptState(f"unknown model state format {state['format']!r}")
+            fmt = state["format"]
+            if isinstance(fmt, bool) or fmt not in _READABLE_FORMATS:
+                raise CorruptState(f"unknown model state format {fmt!r}")
             settings = ModelSettings.from_dict(state["settings"])
             model = cls(state["service"], settings)
             windows_seen = state["windows_seen"]
             if isinstance(windows_seen, bool) or not isinstance(windows_seen, int) or windows_seen < 0:
                 raise CorruptState(f"windows_seen must be an int >= 0, got {windows_seen!r}")
             model.windows_seen = windows_seen
-            model._baseline = cls._restore(SeasonalBaseline, state["baseline"], model._baseline)
+            model._baseline = cls._restore(SeasonalBaseline, state["baseline"], model._baseline,
+                                           upgrade=fmt < _STATE_FORMAT)
             model._trees = cls._restore(HalfSpaceTrees, state["trees"], model._trees)
             model._cal_trees = cls._restore(TailCalibrator, state["calibration"]["trees"],
                                             model._cal_trees)
@@ -401,7 +407,7 @@ class ServiceModel:
         return model
 
     @staticmethod
-    def _restore(kind: type, part: Any, fresh: Any) -> Any:
+    def _restore(kind: type, part: Any, fresh: Any, upgrade: bool = False) -> Any:
         """Restore one component and check it matches what the settings would build."""
         if (part is None) != (fresh is None):
             raise CorruptState(f"{kind.__name__} state does not match the model kind")
@@ -409,7 +415,7 @@ class ServiceModel:
             return None
         if not isinstance(part, Mapping):
             raise CorruptState(f"{kind.__name__} state must be a mapping")
-        restored = kind.from_state(part)
+        restored = kind.from_state(part, upgrade=True) if upgrade else kind.from_state(part)
         if kind is SeasonalBaseline:
             same = restored.half_life == fresh.half_life
         elif kind is HalfSpaceTrees:
