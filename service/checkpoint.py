@@ -36,6 +36,7 @@ import re
 import struct
 import time
 import zlib
+from collections.abc import Iterable, Iterator, Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -43,11 +44,11 @@ from typing import Any
 import orjson
 
 from models import ServiceModel, decode_state, encode_state
-from models.errors import StateError
+from models.errors import CorruptState, StateError
 from service.errors import StateStoreError
 from service.stats import RuntimeStats
 
-__all__ = ["CheckpointSaveError", "CheckpointStore", "Restored", "SEGMENT_FORMAT", "save_failure_reason"]
+__all__ = ["CheckpointSaveError", "CheckpointStore", "Restored", "RestoredModels", "SEGMENT_FORMAT", "save_failure_reason"]
 
 log = logging.getLogger("tidewatch.checkpoint")
 
@@ -92,11 +93,40 @@ def save_failure_reason(exc: OSError) -> str:
     return reason
 
 
+class RestoredModels(Mapping[str, ServiceModel]):
+    """Verified model records by service, decoded each time one is read.
+
+    A restore keeps the records (bytes), not the decoded models, so a state directory holding more
+    models than ``limits.max_live_models`` is never in memory as live models all at once:
+    :meth:`service.registry.ModelRegistry.restore` takes :meth:`records` and decodes only as many as
+    fit, parking the rest in the spill store as they are.
+    """
+
+    def __init__(self, key: bytes | None = None) -> None:
+        self.key = key
+        self._records: dict[str, bytes] = {}
+
+    def add(self, service: str, record: bytes) -> None:
+        self._records[service] = record
+
+    def records(self) -> Iterator[tuple[str, bytes]]:
+        return iter(self._records.items())
+
+    def __getitem__(self, service: str) -> ServiceModel:
+        return decode_state(self._records[service], key=self.key)[1]
+
+    def __iter__(self) -> Iterator[str]:
+        return iter(self._records)
+
+    def __len__(self) -> int:
+        return len(self._records)
+
+
 @dataclass
 class Restored:
     """What a restore found."""
 
-    models: dict[str, ServiceModel] = field(default_factory=dict)
+    models: RestoredModels = field(default_factory=RestoredModels)
     runtime: dict[str, Any] | None = None
     refused: list[str] = field(default_factory=list)  # one human line per refused record or file
     generation: int = 0
@@ -145,7 +175,7 @@ class CheckpointStore:
 
     def load(self) -> Restored:
         """Read the newest base and every later segment; never raises on bad content."""
-        restored = Restored()
+        restored = Restored(models=RestoredModels(self.key))
         self._remove_stale_temporaries()
         segments = self._segments()
         parsed: list[tuple[int, Path, bool, list[tuple[int, bytes]], bool]] = []
@@ -172,11 +202,11 @@ class CheckpointStore:
             for kind, payload in frames:
                 if kind == _KIND_MODEL:
                     try:
-                        service, model = decode_state(payload, key=self.key)
+                        service, _model = decode_state(payload, key=self.key)  # verified now, decoded again when read
                     except StateError as exc:
                         self._refuse(restored, type(exc).__name__, f"{path}: a model record was refused: {exc}")
                         continue
-                    restored.models[service] = model
+                    restored.models.add(service, payload)
                 elif kind == _KIND_RUNTIME:
                     try:
                         restored.runtime = orjson.loads(payload)
@@ -256,14 +286,25 @@ class CheckpointStore:
             pass
 
     # --- writing ---------------------------------------------------------------------
-    def save(self, models: dict[str, ServiceModel], dirty: set[str], runtime: dict[str, Any]) -> int:
+    def save(self, models: Mapping[str, ServiceModel], dirty: set[str], runtime: dict[str, Any]) -> int:
         """Write one checkpoint of the ``dirty`` models and the runtime record.
+
+        ``models`` are the live models; when it is a registry's
+        :class:`~service.registry.LiveModels`, the models evicted to its spill store are part of the
+        checkpoint too (a base holds them all, a delta the dirty ones), so a restart loses none.
+        Problems the registry noted while scoring are logged here, off the hot path.
 
         Returns the bytes written. Raises :class:`StateStoreError` when the
         directory refuses the write (:class:`CheckpointSaveError`, with its reason); the
         previous checkpoints stay intact and nothing of this one is left behind.
         """
         started = time.perf_counter()
+        spill = getattr(models, "spill", None)
+        notes = getattr(models, "notes", None)
+        if notes:
+            for msg, fields in notes:
+                log.error(msg, extra=fields)
+            notes.clear()
         # A base without models (a run's first checkpoint, before anything was learned) is replaced by
         # the first save that has some, so its deltas are not measured against an empty base.
         base = (self._force_base or self.generation == 0 or (self._base_models == 0 and bool(models))
@@ -273,11 +314,7 @@ class CheckpointStore:
         parts = [_HEADER.pack(_MAGIC, SEGMENT_FORMAT, 1 if base else 0, gen)]
         model_bytes = 0
         n_models = 0
-        for service in names:
-            model = models.get(service)
-            if model is None:
-                continue
-            payload = encode_state(service, model, key=self.key)
+        for service, payload in self._records(models, names, spill, base):
             model_bytes += len(payload)
             n_models += 1
             parts.append(_FRAME.pack(_KIND_MODEL, len(payload), zlib.crc32(payload)))
@@ -323,6 +360,41 @@ class CheckpointStore:
         self.stats.last_save_seconds = elapsed
         self.stats.save_seconds.observe(elapsed)
         return len(data)
+
+
+    def _records(self, models: Mapping[str, ServiceModel], names: Iterable[str], spill: Any,
+                 base: bool) -> Iterator[tuple[str, bytes]]:
+        """(service, record) of the named live models, then spilled ones: all of them in a base, the
+        named (dirty) ones in a delta. A spilled record signed with this store's key is copied as it is."""
+        for service in names:
+            model = models.get(service)
+            if model is not None:
+                yield service, encode_state(service, model, key=self.key)
+            elif not base and spill is not None and service in spill:
+                record = self._spilled(spill, service, spill.get(service))
+                if record is not None:
+                    yield service, record
+        if base and spill is not None:
+            for service, record in spill.records():
+                if service not in models:
+                    record = self._spilled(spill, service, record)
+                    if record is not None:
+                        yield service, record
+
+    def _spilled(self, spill: Any, service: str, record: bytes | None) -> bytes | None:
+        if record is not None and spill.key == self.key:
+            return record
+        try:
+            if record is None:
+                raise CorruptState("the spill store could not give the record back")
+            _, model = decode_state(record, key=spill.key)
+        except StateError as exc:
+            # Not hot: a checkpoint. That service's last saved record (if any) stays the one restored.
+            self.stats.state_records_refused[type(exc).__name__] += 1
+            log.error("a spilled model could not be checkpointed", extra={"event": "state_refused", "service": service,
+                                                                          "error": str(exc)})
+            return None
+        return encode_state(service, model, key=self.key)
 
 
 def _fsync_dir(path: Path) -> None:

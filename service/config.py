@@ -172,7 +172,7 @@ class HttpConfig(_Frozen):
 
 
 class LimitsConfig(_Frozen):
-    """Input limits; a message beyond them is rejected with a reason."""
+    """Input and memory limits; a message beyond them is rejected with a reason."""
 
     max_message_bytes: int = Field(65_536, ge=64, description="Largest accepted message.")
     max_service_name: int = Field(200, ge=1, le=10_000, description="Longest accepted service name, in characters.")
@@ -185,9 +185,41 @@ class LimitsConfig(_Frozen):
     )
     max_services: int = Field(
         50_000, ge=1,
-        description="Most services one process tracks (windows and models); messages of further new services are "
-        "rejected with reason service_limit, so a flood of new names cannot exhaust memory.",
+        description="Most services one process tracks (open windows, and models in memory or spilled to disk); "
+        "messages of further new services are rejected with reason service_limit. Spilled models take about 40 KB "
+        "of disk each.",
     )
+    max_live_models: int = Field(
+        50_000, ge=1,
+        description="Most per-service models held in memory (about 85 KiB each at the default settings), at most "
+        "max_services (a larger value is an error; left unset it is capped at max_services). Past it, the least "
+        "recently scored service without an open window is evicted: its model goes to the spill store on disk and "
+        "comes back, exactly as it was, when the service's next window closes.",
+    )
+    new_services_per_second: float = Field(
+        100.0, ge=0,
+        description="Sustained rate at which brand-new services may start (a token bucket on the wall clock); "
+        "messages of further new services are rejected with reason new_service_rate. 0 turns the limit off.",
+    )
+    new_services_burst: int = Field(
+        50_000, ge=1,
+        description="New services that may start at once before new_services_per_second applies: a cold start or "
+        "a backtest sees its whole fleet within seconds, so this admits max_services at the defaults.",
+    )
+
+    @model_validator(mode="after")
+    def _live_models_within_services(self) -> "LimitsConfig":
+        if "max_live_models" in self.model_fields_set and self.max_live_models > self.max_services:
+            raise ValueError(
+                f"max_live_models ({self.max_live_models}) must not exceed max_services ({self.max_services}): "
+                "every live model belongs to a tracked service"
+            )
+        return self
+
+    @property
+    def live_model_limit(self) -> int:
+        """The live-model limit in force: max_live_models, capped at max_services."""
+        return min(self.max_live_models, self.max_services)
 
 
 InputFormat = Literal["native", "otlp_json", "otlp_proto"]

@@ -58,6 +58,7 @@ REASONS: dict[str, str] = {
     "duplicate_key": "an object in the message names the same key twice (JSON leaves the meaning open)",
     "unaligned_key": "the service's messages arrive on more than one input partition (key input by service, or turn on repartitioning)",
     "service_limit": "a new service arrived while the process already tracks limits.max_services services",
+    "new_service_rate": "a new service arrived faster than limits.new_services_per_second (past limits.new_services_burst) allows",
     "late": "the event's window had already closed when it arrived (its time is behind the watermark)",
 }
 

@@ -162,7 +162,7 @@ def _summary(engine: Engine, lines: int, started: float) -> RunSummary:
         rejected=dict(st.rejected),
         windows=st.windows_closed,
         flagged=st.windows_flagged,
-        services=len(engine.registry.models),
+        services=len(engine.registry.models) + st.models_spilled,
         seconds=time.perf_counter() - started,
     )
 
@@ -230,6 +230,7 @@ def replay(config: Config, input_path: str, output: str, rejects: str | None = N
         scores.close()
         if rej is not None:
             rej.close()
+        engine.registry.close()
     return _summary(engine, loop.line, started)
 
 
@@ -287,8 +288,12 @@ def run_embedded(config: Config, opts: RunOptions, stop: threading.Event) -> Run
     elif opts.rejects:
         rej = LineSink(opts.rejects, truncate_to=position("rejects", rej_path))
     engine = _make_engine(config, scores, rej, stats, opts.input)
-    for service, model in restored.models.items():
-        engine.registry.put(service, model)
+    # Evicted models go to a spill store, signed like the checkpoints; only the models that fit under
+    # limits.max_live_models are decoded at start, the rest are parked there. The store is a cache
+    # rebuilt at every start, so it lives in a private temporary directory ($TMPDIR), not the state
+    # directory: a state directory that turns read-only or full must not stop eviction and scoring.
+    engine.registry.attach_spill(None, key=opts.state_key)
+    engine.registry.restore(restored.models.records(), key=opts.state_key)
     if resume and SOURCE_ID in rt.get("sources", {}):
         engine.sources[SOURCE_ID] = SourceWindows.from_state(rt["sources"][SOURCE_ID])
     src = engine.source(SOURCE_ID)
@@ -411,6 +416,7 @@ def run_embedded(config: Config, opts: RunOptions, stop: threading.Event) -> Run
                 sink.abandon()
             else:
                 sink.close()
+        engine.registry.close()  # after the final checkpoint, which reads spilled models
     summary = _summary(engine, loop.line - start_line, started)
     summary.resumed_at_line = start_line
     summary.refused_state = restored.refused

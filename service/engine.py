@@ -122,6 +122,10 @@ class Engine:
                     if len(owner) >= max_services:
                         self.reject("service_limit", f"already tracking {max_services} services", raw, origin_of(i))
                         continue
+                    if not self.registry.admit(service, self.now):
+                        self.reject("new_service_rate", f"new service {service!r} beyond limits.new_services_per_second",
+                                    raw, origin_of(i))
+                        continue
                     owner[service] = src
                 else:
                     # One service's state lives with one source; a second source would fork it.
@@ -157,7 +161,7 @@ class Engine:
             except Rejected as r:
                 self.reject(r.code, r.detail, raw, origin_of(i))
                 continue
-            late = unaligned = limited = 0
+            late = unaligned = limited = rated = 0
             max_services = self.config.limits.max_services
             for service, ts, metrics in events:
                 o = owner.get(service)
@@ -165,6 +169,9 @@ class Engine:
                     if o is None:
                         if len(owner) >= max_services:
                             limited += 1
+                            continue
+                        if not self.registry.admit(service, self.now):
+                            rated += 1
                             continue
                         owner[service] = src
                     else:
@@ -181,6 +188,10 @@ class Engine:
                 self.stats.rejected["service_limit"] += limited - 1
                 self.reject("service_limit", f"{limited} event(s) of new services beyond limits.max_services", raw,
                             origin_of(i))
+            if rated:
+                self.stats.rejected["new_service_rate"] += rated - 1
+                self.reject("new_service_rate", f"{rated} event(s) of new services beyond limits.new_services_per_second",
+                            raw, origin_of(i))
             if unaligned:
                 self.stats.rejected["unaligned_key"] += unaligned - 1
                 self.reject("unaligned_key", f"{unaligned} event(s) of services that arrive on another partition",
@@ -199,9 +210,10 @@ class Engine:
         stats = self.stats
         registry = self.registry
         now = self.now()
+        owner = self.owner  # eviction prefers services without an open window
         for service, window in closed:
             settings = registry.settings(service)
-            model = registry.model(service)
+            model = registry.model(service, owner)
             features = window_features(window, settings.features)
             assessment = model.assess(features, at=window.start)
             registry.dirty.add(service)

@@ -39,7 +39,7 @@ import orjson
 from confluent_kafka import OFFSET_BEGINNING, Consumer, KafkaError, KafkaException, Producer, TopicPartition
 from confluent_kafka.admin import AdminClient, NewTopic
 
-from models import decode_state, encode_state
+from models import decode_state
 from models.errors import StateError
 from service.changelog import PartitionState, apply_record, encode_mark, encode_windows, mark_key, model_key, windows_key
 from service.config import Config, KafkaConfig
@@ -350,13 +350,14 @@ class KafkaRunner:
                 self._produce(k.changelog_topic, encode_mark(src.high_mark), key=mark_key(source_id), partition=partition)
         registry = engine.registry
         for service in sorted(registry.dirty):
-            model = registry.models.get(service)
             src = engine.owner.get(service)
-            if model is None or src is None:
+            if src is None:
                 continue
-            partition = src.tag
-            self._produce(k.changelog_topic, encode_state(service, model, key=self.state_key),
-                          key=model_key(service), partition=partition)
+            # Live, or evicted to the spill store since it changed: either way its latest state.
+            record = registry.record(service, self.state_key)
+            if record is None:
+                continue
+            self._produce(k.changelog_topic, record, key=model_key(service), partition=src.tag)
         registry.dirty.clear()
 
     def commit(self) -> None:
@@ -366,6 +367,7 @@ class KafkaRunner:
         try:
             self._begin()
             self._write_state()
+            self.engine.registry.log_notes(log)
             if self.pending_offsets:
                 offsets = [TopicPartition(t, p, o) for (t, p), o in sorted(self.pending_offsets.items())]
                 meta = self.consumer.consumer_group_metadata()
@@ -526,6 +528,11 @@ class KafkaRunner:
         finally:
             restorer.close()
         n_models = 0
+        registry = self.engine.registry
+        if registry.spill is None:
+            # Spilled records are signed like changelog ones; without a state directory on Kafka the store is a
+            # private temporary file (the changelog stays the record).
+            registry.key = self.state_key
         for topic, partition in parts:
             source_id = self._source_id(topic, partition)
             src = self.engine.source(source_id)
@@ -554,9 +561,15 @@ class KafkaRunner:
                     log.error("model record refused; the service starts fresh",
                               extra={"event": "state_refused", "service": service, "error": str(exc)})
                     continue
-                self.engine.registry.put(name, model)
+                if registry.has_room():
+                    registry.put(name, model)
+                else:
+                    # Past limits.max_live_models: verified above, parked as its record, never held live.
+                    del model
+                    registry.park(name, blob, self.state_key)
                 self.engine.owner.setdefault(name, src)
                 n_models += 1
+            registry.log_notes(log)
             src.touched.clear()
         log.info("state restored", extra={"event": "state_restored", "partitions": partitions, "models": n_models,
                                           "seconds": round(time.monotonic() - started, 3)})

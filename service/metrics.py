@@ -12,6 +12,13 @@ Metric names (all prefixed ``tidewatch_``; counters end in ``_total``, units in 
 ``windows_closed_total``                  (service, window) pairs scored
 ``windows_flagged_total``                 of those, flagged anomalous
 ``models_live``                           models held in memory
+``models_live_limit``                     the live-model limit in force (limits.max_live_models)
+``models_evicted_total``                  models moved out of memory to the spill store (or discarded)
+``models_evicted_active_total``           of those, services that still had an open window (limit below the active fleet)
+``models_reloaded_total``                 spilled models read back when the service's window closed
+``models_discarded_total``                models evicted with no spill store to take them: learned again
+``models_spilled``                        models in the spill store now
+``spill_store_bytes``                     bytes of the records in the spill store
 ``models_created_total``                  models created on first sight of a service
 ``services_tracked``                      services tracked (bounded by limits.max_services)
 ``models_restored_total``                 models restored from saved state
@@ -95,6 +102,19 @@ class RuntimeCollector(Collector):
         yield CounterMetricFamily(P + "windows_closed", "Service windows closed and scored.", value=s.windows_closed)
         yield CounterMetricFamily(P + "windows_flagged", "Service windows flagged anomalous.", value=s.windows_flagged)
         yield GaugeMetricFamily(P + "models_live", "Per-service models held in memory.", value=self.live_models())
+        yield GaugeMetricFamily(P + "models_live_limit", "Most per-service models held in memory (limits.max_live_models).",
+                                value=s.models_live_limit)
+        yield CounterMetricFamily(P + "models_evicted", "Models moved out of memory to the spill store, or discarded.",
+                                  value=s.models_evicted)
+        yield CounterMetricFamily(P + "models_evicted_active",
+                                  "Evicted models whose service still had an open window (the limit is below the active fleet).",
+                                  value=s.models_evicted_active)
+        yield CounterMetricFamily(P + "models_reloaded", "Spilled models read back when their service's window closed.",
+                                  value=s.models_reloaded)
+        yield CounterMetricFamily(P + "models_discarded", "Models evicted with no spill store to take them (learned again).",
+                                  value=s.models_discarded)
+        yield GaugeMetricFamily(P + "models_spilled", "Per-service models in the spill store on disk.", value=s.models_spilled)
+        yield GaugeMetricFamily(P + "spill_store_bytes", "Bytes of the model records in the spill store.", value=s.spill_bytes)
         yield GaugeMetricFamily(P + "services_tracked", "Services this process tracks (windows or a model).",
                                 value=s.services_tracked)
         yield CounterMetricFamily(P + "models_created", "Models created on first sight of a service.", value=s.models_created)

@@ -55,6 +55,15 @@ class RuntimeStats:
         self.models_created = 0
         self.services_tracked = 0  # set by the engine after each batch
         self.models_restored = 0
+        # live-model limit and eviction (service.registry)
+        self.models_live_limit = 0
+        self.models_evicted = 0  # moved to the spill store (or discarded, below)
+        self.models_evicted_active = 0  # of those, services that had an open window (the limit is below the active fleet)
+        self.models_reloaded = 0  # read back from the spill store when a window closed
+        self.models_reload_refused = 0  # spilled records refused on reload (also under state_records_refused)
+        self.models_discarded = 0  # evicted or restored past the limit with no spill store: learned again
+        self.models_spilled = 0  # models in the spill store now
+        self.spill_bytes = 0  # their record bytes
         self.state_records_refused: Counter[str] = Counter()  # by error kind
         self.state_saves = 0
         self.state_save_failures = 0
