@@ -105,8 +105,24 @@ def test_configmap_config_is_the_example_plus_the_cluster_settings():
     cluster = parse_config(_configmap_toml(), "configmap", environ={})
     assert cluster.defaults == example.defaults
     assert cluster.rules == example.rules
-    assert cluster.limits == example.limits
+    # the one cluster-specific limit: live models sized to the pod's memory limit
+    assert cluster.limits.model_copy(update={"max_live_models": example.limits.max_live_models}) == example.limits
     assert cluster.state.checkpoint_interval == example.state.checkpoint_interval
+
+
+def _bytes(quantity: str) -> int:
+    units = {"Ki": 1 << 10, "Mi": 1 << 20, "Gi": 1 << 30}
+    return int(quantity[:-2]) * units[quantity[-2:]]
+
+
+def test_live_models_fit_the_memory_limit_and_spilled_ones_fit_tmp():
+    """About 85 KiB a live model and 40 KB a spilled one at the defaults (BENCHMARKS.md, bench_memory.py)."""
+    cfg = parse_config(_configmap_toml(), "configmap", environ={})
+    c = _container()
+    assert cfg.limits.max_live_models * 85 * 1024 < 0.8 * _bytes(c["resources"]["limits"]["memory"])
+    volumes = {v["name"]: v for v in _one("Deployment")["spec"]["template"]["spec"]["volumes"]}
+    spilled = (cfg.limits.max_services - cfg.limits.max_live_models) * 40_000
+    assert spilled < _bytes(volumes["tmp"]["emptyDir"]["sizeLimit"])
 
 
 def test_http_listen_is_reachable_on_the_container_port():
