@@ -25,6 +25,8 @@ from pathlib import Path
 from confluent_kafka import Consumer, TopicPartition
 from confluent_kafka.admin import AdminClient, NewTopic
 
+from tests.kafka_support import Topics
+
 REPO = Path(__file__).resolve().parents[2]
 KAFKA_SH = REPO / "deploy" / "local-kafka" / "kafka.sh"
 SHARED_LIBS = REPO / ".cache" / "kafka" / "libs"
@@ -97,16 +99,8 @@ def create_topics(bootstrap: str, names: list[str], partitions: int) -> None:
     raise RuntimeError(f"topics {names} not ready")
 
 
-@dataclass
-class Names:
-    """Fresh topic and group names for one tidewatch deployment."""
-
-    input: str
-    output: str
-    rejects: str
-    changelog: str
-    repartition: str
-    group: str
+class Names(Topics):
+    """Fresh topic and group names for one tidewatch deployment (the test suite's :class:`Topics`)."""
 
     @classmethod
     def fresh(cls, prefix: str) -> Names:
