@@ -75,6 +75,9 @@ class _Fenced(_AbortNeeded):
 _FENCED_CODES = frozenset({KafkaError._FENCED, KafkaError.PRODUCER_FENCED, KafkaError.INVALID_PRODUCER_EPOCH})
 # A producer fenced again this soon after being replaced means another live process holds the id.
 _REFENCE_WINDOW_S = 120.0
+# Refusals that asking again will not change.
+_DENIED_CODES = frozenset({KafkaError.TOPIC_AUTHORIZATION_FAILED, KafkaError.CLUSTER_AUTHORIZATION_FAILED,
+                           KafkaError.SASL_AUTHENTICATION_FAILED, KafkaError._AUTHENTICATION})
 
 
 class _Stopped(Exception):
@@ -348,6 +351,12 @@ class KafkaRunner:
             src.touched.clear()
             if src.high_mark != float("-inf"):
                 self._produce(k.changelog_topic, encode_mark(src.high_mark), key=mark_key(source_id), partition=partition)
+        self._write_models()
+
+    def _write_models(self) -> None:
+        """Produce the record of every model changed since the last call into the open transaction."""
+        k = self.k
+        engine = self.engine
         registry = engine.registry
         for service in sorted(registry.dirty):
             src = engine.owner.get(service)
@@ -491,14 +500,22 @@ class KafkaRunner:
         )
         # The operator's consumer tuning (prefetch limits, TLS) applies here too, but never their group.
         conf.update({key: v for key, v in k.consumer_properties.items() if key not in ("group.id", "isolation.level")})
+        # Where each changelog partition ends counting records of transactions still open. A read_committed
+        # reader reports its end at the last stable offset, before an open transaction; when the previous
+        # owner's last transaction is finishing (it was killed after sending its commit, or handed over in a
+        # hurry), stopping there would miss that transaction's state while the group hands us its input
+        # offsets, and windows whose every message it held would never be scored. So reading goes on until
+        # the end reaches this mark: the transaction commits (its state counts) or aborts (it does not).
+        ends = self._log_ends(conf, partitions)
+        log.info("restoring state", extra={"event": "state_restoring", "partitions": partitions})
         restorer = Consumer(conf)
         states: dict[int, PartitionState] = {p: PartitionState() for p in partitions}
         try:
             todo = set()
             assignment = []
             for p in partitions:
-                low, high = restorer.get_watermark_offsets(TopicPartition(k.changelog_topic, p), timeout=_CALL_TIMEOUT)
-                if high > low:
+                low, _ = restorer.get_watermark_offsets(TopicPartition(k.changelog_topic, p), timeout=_CALL_TIMEOUT)
+                if ends[p] > low:
                     todo.add(p)
                     assignment.append(TopicPartition(k.changelog_topic, p, OFFSET_BEGINNING))
             if assignment:
@@ -508,8 +525,8 @@ class KafkaRunner:
                 if self.stop.is_set():
                     raise _Stopped()
                 if time.monotonic() > next_note:
-                    # read_committed stops at the first open transaction: a crashed instance's one
-                    # holds the changelog back until the broker aborts it (transaction.timeout.ms).
+                    # A crashed instance's open transaction holds the changelog back until the broker
+                    # aborts it (transaction.timeout.ms); the group's offset fetch waits for it too.
                     log.info("still restoring; an open transaction may hold the changelog back",
                              extra={"event": "restore_waiting", "partitions": sorted(todo)})
                     next_note = time.monotonic() + 10.0
@@ -519,7 +536,9 @@ class KafkaRunner:
                     err = msg.error()
                     if err is not None:
                         if err.code() == KafkaError._PARTITION_EOF:
-                            todo.discard(msg.partition())
+                            # The end is reported again each time it moves, so an early one just waits.
+                            if msg.offset() >= ends[msg.partition()]:
+                                todo.discard(msg.partition())
                             continue
                         if err.fatal():
                             raise BusFatalError(f"fatal error reading the changelog: {err.str()}")
@@ -573,6 +592,30 @@ class KafkaRunner:
             src.touched.clear()
         log.info("state restored", extra={"event": "state_restored", "partitions": partitions, "models": n_models,
                                           "seconds": round(time.monotonic() - started, 3)})
+
+    def _log_ends(self, conf: dict[str, Any], partitions: list[int]) -> dict[int, int]:
+        """The changelog's end offsets (high watermarks, read uncommitted) for ``partitions``."""
+        k = self.k
+        while True:
+            # A client of its own each time: one made before a broker restart can keep asking with a
+            # stale leader epoch and be refused for good.
+            probe = Consumer({**conf, "isolation.level": "read_uncommitted"})
+            try:
+                return {p: probe.get_watermark_offsets(TopicPartition(k.changelog_topic, p), timeout=_CALL_TIMEOUT)[1]
+                        for p in partitions}
+            except KafkaException as exc:
+                err = exc.args[0] if exc.args else None
+                if isinstance(err, KafkaError) and err.code() in _DENIED_CODES:
+                    raise BusFatalError(f"reading the changelog's end offsets was refused: {err.str()}") from exc
+                if self.stop.is_set():
+                    raise _Stopped() from exc
+                # The broker is away or electing a leader: not ready (readyz) but alive, so keep asking.
+                self.stats.heartbeat = time.monotonic()
+                log.warning("changelog end offsets not read; retrying",
+                            extra={"event": "kafka_retry", "error": str(exc)})
+                time.sleep(0.5)
+            finally:
+                probe.close()
 
     # --- rebalance callbacks -----------------------------------------------------------
     def _on_assign(self, consumer: Consumer, partitions: list[TopicPartition]) -> None:
@@ -778,7 +821,23 @@ class KafkaRunner:
                     continue
                 if time.monotonic() >= next_commit:
                     self.commit()
-                    next_commit = time.monotonic() + interval
+                    # Fixed rate: a commit's own duration does not stretch the interval, so a window closed
+                    # just after a commit waits one interval for the next. Overloaded (a commit longer than
+                    # the interval), it falls back to an interval of work between commits.
+                    now = time.monotonic()
+                    next_commit += interval
+                    if next_commit <= now:
+                        next_commit = now + interval
+                elif self.in_txn and len(msgs) < k.batch_size and self.engine.registry.dirty:
+                    # Caught up (the batch was not full): use the slack to encode and send the changed
+                    # models now, not all at once inside the commit, so the commit only adds what changed
+                    # since. A model changed again before the commit is written again (the later record
+                    # wins on the compacted changelog); under a backlog this is skipped, so it costs nothing.
+                    try:
+                        self._write_models()
+                    except _AbortNeeded as exc:
+                        log.warning("transaction must abort; rewinding", extra={"event": "txn_abort", "error": str(exc)})
+                        self._abort_and_rewind()
             self.commit()
         except _Stopped:
             log.info("stopped while restoring state", extra={"event": "stopped_restoring"})
