@@ -71,16 +71,36 @@ _PADDING = 0.15
 _SIZE_LIMIT = 0.1
 
 
+# The dtype helpers run on every restore: plain integer limits, not ``np.iinfo`` (which builds an
+# object per call); the dtypes chosen are the same.
+_UINT_DTYPES = ((0xFF, np.dtype(np.uint8)), (0xFFFF, np.dtype(np.uint16)),
+                (0xFFFF_FFFF, np.dtype(np.uint32)))
+_FLOAT32 = np.dtype(np.float32)
+
+
 def _mass_dtype(window_size: int) -> np.dtype:
-    for dtype in (np.uint8, np.uint16, np.uint32):
-        if window_size <= np.iinfo(dtype).max:
-            return np.dtype(dtype)
+    for limit, dtype in _UINT_DTYPES:
+        if window_size <= limit:
+            return dtype
     return np.dtype(np.uint64)
 
 
 def _feature_dtype(n_features: int) -> np.dtype:
     return np.dtype(np.uint8 if n_features <= 256 else np.uint16 if n_features <= 65536
                     else np.uint32)
+
+
+def _state_array(state: Mapping[str, Any], key: str, shape: tuple[int, int],
+                 dtype: np.dtype) -> np.ndarray:
+    """An owned, writable copy of ``state[key]`` after checking its type, shape and dtype.
+
+    The decoder may hand over read-only views of a record's bytes: the copy is the one copy the
+    trees' arrays get on their way into place.
+    """
+    arr = state[key]
+    if not isinstance(arr, np.ndarray) or arr.shape != shape or arr.dtype != dtype:
+        raise CorruptState(f"{key!r} must be a {dtype} array of shape {shape}")
+    return arr.copy()
 
 
 class HalfSpaceTrees:
@@ -386,31 +406,29 @@ class HalfSpaceTrees:
             names = tuple(sorted(set(features)))
             if not names or list(names) != features:
                 raise CorruptState("features must be distinct, sorted and non-empty")
-            n_internal = 2 ** hst.height - 1
-            mass = _mass_dtype(hst.window_size)
-            expect = {
-                "feature": ((hst.n_trees, n_internal), _feature_dtype(len(names))),
-                "threshold": ((hst.n_trees, n_internal), np.dtype(np.float32)),
-                "l_mass": ((hst.n_trees, hst.n_nodes), mass),
-                "r_mass": ((hst.n_trees, hst.n_nodes), mass),
-            }
-            arrays = {}
-            for key, (shape, dtype) in expect.items():
-                arr = state[key]
-                if not isinstance(arr, np.ndarray) or arr.shape != shape or arr.dtype != dtype:
-                    raise CorruptState(f"{key!r} must be a {dtype} array of shape {shape}")
-                arrays[key] = arr.copy()
+            internal = (hst.n_trees, 2 ** hst.height - 1)
+            nodes = (hst.n_trees, 2 ** (hst.height + 1) - 1)
+            mass = hst._l_mass.dtype  # the constructor's: _mass_dtype(window_size)
+            feature = _state_array(state, "feature", internal, _feature_dtype(len(names)))
+            threshold = _state_array(state, "threshold", internal, _FLOAT32)
+            l_mass = _state_array(state, "l_mass", nodes, mass)
+            r_mass = _state_array(state, "r_mass", nodes, mass)
         except (KeyError, TypeError, ValueError, AttributeError, SettingsError) as exc:
             raise CorruptState(f"malformed half-space-trees state: {exc}") from exc
-        if arrays["feature"].size and int(arrays["feature"].max()) >= len(names):
+        if feature.size and int(feature.max()) >= len(names):
             raise CorruptState("a split refers to a feature that does not exist")
-        if not np.isfinite(arrays["threshold"]).all():
+        # One reduction instead of an isfinite mask: float32 values summed in float64 cannot
+        # overflow, so the sum is finite exactly when every threshold is.
+        if not math.isfinite(float(threshold.sum(dtype=np.float64))):
             raise CorruptState("split thresholds must be finite")
         hst.features = names
         hst._index = {n: i for i, n in enumerate(names)}
-        hst._low = np.array([hst.limits.get(n, (0.0, 1.0))[0] for n in names])
-        hst._high = np.array([hst.limits.get(n, (0.0, 1.0))[1] for n in names])
-        hst._feature, hst._threshold = arrays["feature"], arrays["threshold"]
-        hst._l_mass, hst._r_mass = arrays["l_mass"], arrays["r_mass"]
+        if hst.limits:
+            hst._low = np.array([hst.limits.get(n, (0.0, 1.0))[0] for n in names])
+            hst._high = np.array([hst.limits.get(n, (0.0, 1.0))[1] for n in names])
+        else:
+            hst._low, hst._high = np.zeros(len(names)), np.ones(len(names))
+        hst._feature, hst._threshold = feature, threshold
+        hst._l_mass, hst._r_mass = l_mass, r_mass
         hst.counter, hst._first_window = counter, first
         return hst

@@ -108,7 +108,38 @@ def test_wrong_key_and_missing_signature_are_refused() -> None:
     assert decode_state(signed)[0] == "ticket-api"
 
 
-def _rebuild(record: bytes, header_edit) -> bytes:
+def _encode_v1(service: str, model, key: bytes | None = None) -> bytes:
+    """A format-1 record, as the code before format 2 wrote it (the layout in the module docstring
+    of ``models.persistence``): one JSON header with ``{"__ndarray__": i}`` placeholders."""
+    import hmac
+
+    import orjson
+
+    arrays: list[np.ndarray] = []
+
+    def extract(value):
+        if isinstance(value, np.ndarray):
+            arrays.append(np.ascontiguousarray(value.astype(value.dtype.newbyteorder("<"), copy=False)))
+            return {"__ndarray__": len(arrays) - 1}
+        if isinstance(value, dict):
+            return {k: extract(v) for k, v in value.items()}
+        if isinstance(value, (list, tuple)):
+            return [extract(v) for v in value]
+        return value
+
+    state = extract(model.to_state())
+    table = [{"dtype": a.dtype.str, "shape": list(a.shape)} for a in arrays]
+    header = orjson.dumps({"state": state, "arrays": table})
+    payload = b"".join(a.tobytes() for a in arrays)
+    name = service.encode()
+    record = struct.pack("<4sHHH", MAGIC, 1, 1 if key else 0, len(name)) + name
+    record += struct.pack("<I", len(header)) + header + struct.pack("<Q", len(payload)) + payload
+    if key:
+        record += hmac.new(key, record, hashlib.sha256).digest()
+    return record + hashlib.blake2b(record, digest_size=16).digest()
+
+
+def _rebuild_v1(record: bytes, header_edit) -> bytes:
     """Re-encode a version-1 record with an edited JSON header (valid checksum, unsigned)."""
     import orjson
 
@@ -122,6 +153,97 @@ def _rebuild(record: bytes, header_edit) -> bytes:
     return _reseal(body + b"\x00" * 16)
 
 
+def _sections(record: bytes) -> tuple[int, bytes, bytes, bytes]:
+    """Format-2 record split into (end of the name, state JSON, table JSON, payload)."""
+    (name_len,) = struct.unpack_from("<H", record, 8)
+    pos = 10 + name_len
+    (state_len,) = struct.unpack_from("<I", record, pos)
+    state = record[pos + 4 : pos + 4 + state_len]
+    at = pos + 4 + state_len
+    (table_len,) = struct.unpack_from("<I", record, at)
+    table = record[at + 4 : at + 4 + table_len]
+    at += 4 + table_len
+    (payload_len,) = struct.unpack_from("<Q", record, at)
+    at += 8 + (-(at + 8) % 8)
+    return pos, state, table, record[at : at + payload_len]
+
+
+def _rebuild(record: bytes, state_edit=None, table_edit=None, payload=None, pad: bytes | None = None) -> bytes:
+    """Re-encode an unsigned format-2 record with edited sections and a valid checksum."""
+    import orjson
+
+    pos, state, table, old_payload = _sections(record)
+    if state_edit is not None:
+        state = orjson.dumps(state_edit(orjson.loads(state)))
+    if table_edit is not None:
+        table = orjson.dumps(table_edit(orjson.loads(table)))
+    payload = old_payload if payload is None else payload
+    body = record[:pos] + struct.pack("<I", len(state)) + state + struct.pack("<I", len(table)) + table
+    body += struct.pack("<Q", len(payload))
+    body += bytes(-len(body) % 8) if pad is None else pad
+    return _reseal(body + payload + b"\x00" * 16)
+
+
+def _entry(table: list, *path: str) -> int:
+    return next(i for i, (p, _, _) in enumerate(table) if p == list(path))
+
+
+@pytest.mark.parametrize("edit", [
+    {"table_edit": lambda t: [[p, "|O", s] for p, _, s in t]},
+    {"table_edit": lambda t: [[p, d, [10 ** 12]] for p, d, _ in t]},
+    {"table_edit": lambda t: t[:-1]},
+    {"table_edit": lambda t: [[["baseline", "nowhere", "x"], d, s] if i == 0 else [p, d, s]
+                              for i, (p, d, s) in enumerate(t)]},
+    {"table_edit": lambda t: [[["windows_seen"], d, s] if i == 0 else [p, d, s]
+                              for i, (p, d, s) in enumerate(t)]},  # points at a value, not a null
+    {"table_edit": lambda t: [[[], d, s] if i == 0 else [p, d, s] for i, (p, d, s) in enumerate(t)]},
+    {"table_edit": lambda t: [[p + [True], d, s] if i == 0 else [p, d, s] for i, (p, d, s) in enumerate(t)]},
+    {"table_edit": lambda t: [[["baseline", "names", -1], d, s] if i == 0 else [p, d, s]
+                              for i, (p, d, s) in enumerate(t)]},
+    {"table_edit": lambda t: [[p, d, [s[0], -1]] if len(s) == 2 else [p, d, s] for p, d, s in t]},
+    {"table_edit": lambda t: [[p, d] for p, d, _ in t]},
+    {"table_edit": lambda t: {"arrays": t}},
+    {"state_edit": lambda s: {**s, "windows_seen": "many"}},
+    {"state_edit": lambda s: {**s, "service": "berth-planner"}},
+    {"state_edit": lambda s: {**s, "baseline": None}},
+    {"state_edit": lambda s: [s]},
+    {"payload_edit": lambda p: p + b"\x00" * 8},
+    {"pad": b"\x01" * 8},
+])
+def test_well_sealed_but_malformed_records_are_corrupt(edit: dict) -> None:
+    record = encode_state("ticket-api", trained(n=40))
+    assert _rebuild(record) == record  # the tool is sound
+    kwargs = dict(edit)
+    payload_edit = kwargs.pop("payload_edit", None)
+    if payload_edit is not None:
+        kwargs["payload"] = payload_edit(_sections(record)[3])
+    if "pad" in kwargs:  # non-zero padding of the record's own length
+        kwargs["pad"] = b"\x01" * (len(_sections_pad(record)) or 8)
+    with pytest.raises(CorruptState):
+        decode_state(_rebuild(record, **kwargs))
+    # A refused table never poisons the table cache: the genuine record still decodes.
+    assert decode_state(record)[1].windows_seen == 40
+
+
+def test_an_array_placed_twice_is_corrupt() -> None:
+    import orjson
+
+    record = encode_state("ticket-api", trained(n=40))
+    _, _, table, payload = _sections(record)
+    first_path, first_dtype, first_shape = orjson.loads(table)[0]
+    nbytes = int(np.prod(first_shape)) * np.dtype(first_dtype).itemsize
+    # The first array listed again, with its bytes: table and payload agree, the place does not.
+    twice = _rebuild(record, table_edit=lambda t: t + [t[0]], payload=payload + payload[:nbytes])
+    with pytest.raises(CorruptState, match="placeholder"):
+        decode_state(twice)
+
+
+def _sections_pad(record: bytes) -> bytes:
+    pos, state, table, _ = _sections(record)
+    at = pos + 4 + len(state) + 4 + len(table) + 8
+    return record[at : at + (-at % 8)]
+
+
 @pytest.mark.parametrize("edit", [
     lambda h: {**h, "arrays": [{**a, "dtype": "|O"} for a in h["arrays"]]},
     lambda h: {**h, "arrays": [{**a, "shape": [10 ** 12]} for a in h["arrays"]]},
@@ -132,11 +254,104 @@ def _rebuild(record: bytes, header_edit) -> bytes:
     lambda h: {"state": h["state"]},
     lambda h: [1, 2, 3],
 ])
-def test_well_sealed_but_malformed_headers_are_corrupt(edit) -> None:
-    record = encode_state("ticket-api", trained(n=40))
-    assert decode_state(_rebuild(record, lambda h: h))[1].windows_seen == 40  # the tool is sound
+def test_well_sealed_but_malformed_v1_headers_are_corrupt(edit) -> None:
+    record = _encode_v1("ticket-api", trained(n=40))
+    assert decode_state(_rebuild_v1(record, lambda h: h))[1].windows_seen == 40  # the tool is sound
     with pytest.raises(CorruptState):
-        decode_state(_rebuild(record, edit))
+        decode_state(_rebuild_v1(record, edit))
+
+
+@pytest.mark.parametrize("kind", ["half_space_trees", "adaptive_baseline", "combined"])
+@pytest.mark.parametrize("key", [None, KEY])
+def test_format_1_records_still_load_and_behave_identically(kind: str, key: bytes | None) -> None:
+    model = trained(kind, n=300)
+    old = _encode_v1("ticket-api", model, key=key)
+    assert struct.unpack_from("<H", old, 4) == (1,)
+    service, restored = decode_state(old, key=key)
+    assert service == "ticket-api" and restored.windows_seen == 300
+    # Re-encoded, a format-1 model is the same format-2 record as the original.
+    assert encode_state("ticket-api", restored, key=key) == encode_state("ticket-api", model, key=key)
+    for row in rows(2, 100):
+        assert model.assess(row) == restored.assess(row)
+    if key is not None:
+        with pytest.raises(StateSignatureMismatch):
+            decode_state(old, key=b"another-key")
+
+
+def test_decoded_arrays_are_read_only_views_and_the_model_owns_its_own() -> None:
+    from models.persistence import _parse_body
+
+    model = trained("combined", n=120)
+    record = encode_state("ticket-api", model)
+    _, state = _parse_body(record, 10, len("ticket-api"), len(record) - 16)
+    day = state["baseline"]["day"]
+    assert isinstance(day, np.ndarray) and not day.flags.writeable  # a view of the record
+    assert np.array_equal(day, np.array(model.to_state()["baseline"]["day"]))
+    # The restored trees copied theirs: learning changes them, never the record.
+    _, restored = decode_state(record)
+    before = bytes(record)
+    for row in rows(4, 60):
+        restored.assess(row)
+    assert restored._trees._l_mass.flags.writeable and record == before
+    assert encode_state("ticket-api", restored) != record
+
+
+def test_arrays_are_aligned_in_the_record() -> None:
+    record = encode_state("ticket-api", trained(n=50), key=KEY)
+    pos, state, table, payload = _sections(record)
+    import orjson
+
+    offset = pos + 4 + len(state) + 4 + len(table) + 8
+    offset += -offset % 8
+    assert offset % 8 == 0
+    for path, dtype, shape in orjson.loads(table):
+        itemsize = np.dtype(dtype).itemsize
+        assert (offset % itemsize) == 0, (path, dtype, offset)
+        offset += int(np.prod(shape, dtype=np.int64)) * itemsize
+    assert offset == pos + 4 + len(state) + 4 + len(table) + 8 + len(_sections_pad(record)) + len(payload)
+
+
+@pytest.mark.parametrize("state, message", [
+    ({"x": float("nan")}, "non-finite"),
+    ({"x": [1.0, float("inf")]}, "non-finite"),
+    ({"x": {1: 2}}, "keys must be strings"),
+    ({"x": {1, 2}}, "cannot store"),
+    ({"x": np.array([object()], dtype=object)}, "dtype"),
+    ({"x": np.float64("inf")}, "non-finite"),
+])
+def test_unstorable_states_are_refused_on_encode(monkeypatch, state: dict, message: str) -> None:
+    from models import ServiceModel
+
+    model = trained(n=5)
+    monkeypatch.setattr(ServiceModel, "to_state", lambda self: state)
+    with pytest.raises(ModelError, match=message):
+        encode_state("ticket-api", model)
+
+
+def test_odd_but_storable_values_round_trip_through_the_codec(monkeypatch) -> None:
+    """Subclasses, tuples, big-endian and strided arrays, arrays in lists: stored as plain values."""
+    import orjson
+
+    from models.persistence import _parse_body
+
+    model = trained(n=5)
+    big_endian = np.arange(6, dtype=">f8").reshape(2, 3)
+    strided = np.arange(10, dtype=np.int64)[::2]
+    weird = {"t": (1, "two", None), "f": np.float64(0.25), "arrays": [big_endian, {"s": strided}],
+             "empty": np.zeros((0, 4), dtype=np.uint16), "scalar": np.array(7, dtype=np.int32)}
+    from models import ServiceModel
+
+    original = ServiceModel.to_state
+    monkeypatch.setattr(ServiceModel, "to_state", lambda self: {**original(self), "extra": weird})
+    record = encode_state("ticket-api", model)
+    _, state = _parse_body(record, 10, len("ticket-api"), len(record) - 16)
+    extra = state["extra"]
+    assert extra["t"] == [1, "two", None] and extra["f"] == 0.25
+    assert np.array_equal(extra["arrays"][0], big_endian) and extra["arrays"][0].dtype == np.float64
+    assert np.array_equal(extra["arrays"][1]["s"], strided)
+    assert extra["empty"].shape == (0, 4) and extra["empty"].dtype == np.uint16
+    assert extra["scalar"].shape == () and int(extra["scalar"]) == 7
+    assert orjson.loads(_sections(record)[1])["extra"]["arrays"] == [None, {"s": None}]
 
 
 def test_service_name_must_match_the_model() -> None:
@@ -148,10 +363,13 @@ def test_record_layout_starts_with_magic_and_version() -> None:
     record = encode_state("ticket-api", trained(n=5), key=KEY)
     magic, version, flags, name_len = struct.unpack_from("<4sHHH", record)
     assert (magic, version, flags, name_len) == (MAGIC, FORMAT_VERSION, 1, len("ticket-api"))
+    assert FORMAT_VERSION == 2
     assert record[10:20] == b"ticket-api"
-    (header_len,) = struct.unpack_from("<I", record, 20)
-    assert record[24:25] == b"{"  # a JSON header follows, not a pickle stream
-    assert len(record) > 24 + header_len + 8 + 32 + 16
+    pos, state, table, payload = _sections(record)
+    assert record[24:25] == b"{" and state[:1] == b"{"  # JSON state follows, not a pickle stream
+    assert table[:1] == b"["
+    assert len(record) == (24 + len(state) + 4 + len(table) + 8 + len(_sections_pad(record))
+                           + len(payload) + 32 + 16)
 
 
 @pytest.mark.parametrize("kind", ["combined", "half_space_trees"])
