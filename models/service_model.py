@@ -107,9 +107,11 @@ SQUASH_Z = 3.0
 _TREE_PARTS = ("level", "change")
 
 #: Model state format. 3 added the baseline's drift statistics and tail clusters
-#: (:data:`models.seasonal.NEW_IN_FORMAT_3`); a format-2 state still loads, those starting at zero.
-_STATE_FORMAT = 3
-_READABLE_FORMATS = (2, 3)
+#: (:data:`models.seasonal.NEW_IN_FORMAT_3`); 4 added each feature's held value and its count
+#: of windows away from it (:data:`models.seasonal.NEW_IN_FORMAT_4`). Formats 2 and 3 still
+#: load, with the missing statistics at the values of a feature that is where it was.
+_STATE_FORMAT = 4
+_READABLE_FORMATS = (2, 3, 4)
 
 
 @dataclass(slots=True)

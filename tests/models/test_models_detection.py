@@ -1,12 +1,14 @@
-"""Stuck values, the alert count on noise and the format-2 upgrade of the baseline's new statistics, on
-synthetic streams with known answers."""
+"""Stuck values, held values (a counter that sits at one value), the alert count on noise and the
+format-2 / format-3 upgrades of the baseline's new statistics, on synthetic streams with known
+answers."""
 
 from __future__ import annotations
 
 import numpy as np
 
 from models import ModelSettings, ServiceModel, build_model
-from models.seasonal import NEW_IN_FORMAT_3, SeasonalBaseline
+from models.seasonal import (HOLD_RATE, NEW_IN_FORMAT_3, NEW_IN_FORMAT_4, NEW_INTS_IN_FORMAT_4,
+                             SeasonalBaseline)
 
 T0 = 1772409600.0  # 2026-03-02T00:00:00Z, a Monday
 STEP = 300.0
@@ -78,7 +80,7 @@ def test_a_format_2_state_loads_with_fresh_drift_statistics() -> None:
     restored = ServiceModel.from_state(old)
     for k in NEW_IN_FORMAT_3:
         assert restored._baseline._f[k] == [0.0] * len(restored._baseline.features)
-    assert restored.to_state()["format"] == 3
+    assert restored.to_state()["format"] == 4
     # It keeps scoring: same predictions as the model it came from.
     ev_a = model._baseline.evidence_one({"cpu.mean": 0.3})["cpu.mean"]
     ev_b = restored._baseline.evidence_one({"cpu.mean": 0.3})["cpu.mean"]
@@ -90,3 +92,77 @@ def test_a_format_2_state_loads_with_fresh_drift_statistics() -> None:
     broken = dict(state, baseline={k: v for k, v in state["baseline"].items() if k != "ez"})
     with pytest.raises(CorruptState):
         ServiceModel.from_state(broken)
+
+
+def with_counter(model, x, counter, start: int = 0):
+    return [model.assess({"cpu.mean": float(v), "restarts.mean": float(c), "count": 5.0},
+                         at=T0 + STEP * (start + k)) for k, (v, c) in enumerate(zip(x, counter))]
+
+
+def test_a_counter_that_holds_its_value_does_not_page_on_its_routine_blips() -> None:
+    # A restart counter: 0 but for one window per deploy, a few deploys a week. Its error scale is
+    # made of a handful of changes, so each blip is a huge z; without the hold rule the first
+    # blips after warm-up open alerts (this test fails with HOLD_RATE set above 1).
+    n = 2400
+    counter = np.zeros(n)
+    counter[[500, 1100, 1700, 2200]] = 0.2
+    results = with_counter(build_model("svc", ModelSettings()), cpu(7, n), counter)
+    assert onsets(results[36:]) == []
+    blip = build_model("svc", ModelSettings())
+    with_counter(blip, cpu(7, 500), counter[:500])
+    ev = blip._baseline.evidence_one({"cpu.mean": 0.3, "restarts.mean": 0.2, "count": 5.0},
+                                     at=T0 + STEP * 500)["restarts.mean"]
+    i = blip._baseline.locate(["restarts.mean"])[0]
+    q = (blip._baseline._f["rep"][i] + 0.5) / (blip._baseline._f["repw"][i] + 1.0)
+    assert q >= HOLD_RATE and ev.held and abs(ev.z) > 10.0
+    assert ev.p == 1.0 - q  # its rate of change, not its z
+
+
+def test_a_held_value_that_moves_away_and_stays_opens_an_alert_on_the_second_window() -> None:
+    # A light sensor at 0 all night is switched on (the room is in use): the first window away is
+    # judged by the rate of change, the second by its deviation, which the first must not have
+    # taught the tail to expect.
+    n = 700
+    light = np.zeros(n)
+    light[500:] = 420.0 + np.round(5.0 * np.random.default_rng(8).normal(size=200), 1)
+    results = with_counter(build_model("svc", ModelSettings()), cpu(9, n), light)
+    found = [36 + k for k in onsets(results[36:])]
+    assert found and found[0] == 501
+    assert not any(r.anomalous for r in results[36:500])
+
+
+def test_the_hold_limit_is_for_features_that_nearly_never_change() -> None:
+    # A value that repeats in most windows but changes in more than one window in 20 (a small
+    # integer count) keeps its deviation evidence: its changes are common enough to be measured.
+    assert 0.9 < HOLD_RATE < 1.0
+    rng = np.random.default_rng(10)
+    x = rng.poisson(0.2, size=900).astype(float)  # repeats in about 70 % of windows
+    x[700] = 12.0
+    model = build_model("svc", ModelSettings(kind="adaptive_baseline"))
+    results = [model.assess({"queue.mean": float(v), "count": 5.0}, at=T0 + STEP * k)
+               for k, v in enumerate(x)]
+    assert 700 in [36 + k for k in onsets(results[36:])]
+
+
+def test_a_format_3_state_loads_with_the_held_value_at_the_last_value() -> None:
+    model = build_model("svc", ModelSettings())
+    counter = np.zeros(300)
+    counter[200] = 0.2
+    with_counter(model, cpu(11, 300), counter)
+    state = model.to_state()
+    assert state["format"] == 4
+    dropped = set(NEW_IN_FORMAT_4) | set(NEW_INTS_IN_FORMAT_4)
+    old = dict(state, format=3, baseline={k: v for k, v in state["baseline"].items() if k not in dropped})
+    restored = ServiceModel.from_state(old)
+    base = restored._baseline
+    assert base._f["held"] == base._f["last"] and base._i["away"] == [0] * len(base.features)
+    assert restored.to_state()["format"] == 4
+    feats = {"cpu.mean": 0.31, "restarts.mean": 0.0, "count": 5.0}
+    at = T0 + STEP * 300
+    assert model.assess(dict(feats), at=at).score == restored.assess(dict(feats), at=at).score
+    import pytest
+
+    from models.errors import CorruptState
+    with pytest.raises(CorruptState):  # a format-4 state must carry them
+        ServiceModel.from_state(dict(state, baseline={k: v for k, v in state["baseline"].items()
+                                                      if k != "held"}))
