@@ -62,6 +62,7 @@ Examples
 from __future__ import annotations
 
 import math
+from array import array
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from statistics import NormalDist
@@ -216,6 +217,27 @@ class Evidence:
         return max(abs(self.z), self.stuck)
 
 
+# Profile rows of a new feature (copied, never shared). ``H`` (unsigned short) holds the slot
+# counts, which stop at 65535 (the uint16 of the state).
+_ZERO_DAY, _ZERO_DAY_N = array("d", bytes(8 * 24)), array("H", bytes(2 * 24))
+_ZERO_WEEK, _ZERO_WEEK_N = array("d", bytes(8 * 168)), array("H", bytes(2 * 168))
+
+
+def _stack(rows: list[array], dtype: Any, width: int) -> np.ndarray:
+    """The profile rows as one writable ``(len(rows), width)`` array (one copy of their bytes)."""
+    return np.frombuffer(bytearray().join(rows), dtype=dtype).reshape(len(rows), width)
+
+
+def _rows(code: str, values: np.ndarray) -> list[array]:
+    """One typed array per row of a checked 2-D state array (a copy of each row's bytes)."""
+    out = []
+    for row in np.ascontiguousarray(values, dtype=values.dtype.newbyteorder("=")):
+        typed = array(code)
+        typed.frombytes(memoryview(row).cast("B"))
+        out.append(typed)
+    return out
+
+
 class SeasonalBaseline:
     """Level, hour-of-day and hour-of-week predictions per feature (see the module docstring).
 
@@ -250,10 +272,12 @@ class SeasonalBaseline:
         self._f: dict[str, list[float]] = {k: [] for k in self._FLOATS}
         self._i: dict[str, list[int]] = {k: [] for k in self._INTS}
         # Profiles live in plain lists: per-element numpy access costs more than the arithmetic.
-        self._day: list[list[float]] = []
-        self._day_n: list[list[int]] = []
-        self._week: list[list[float]] = []
-        self._week_n: list[list[int]] = []
+        # One typed array per feature: element access costs what a list's does, and the state
+        # conversions are a copy of bytes instead of a conversion of every value.
+        self._day: list[array] = []
+        self._day_n: list[array] = []
+        self._week: list[array] = []
+        self._week_n: list[array] = []
         self.first_at: float = math.nan  # start of the first window seen with a time
         self.step: float = math.nan  # smallest gap seen between window starts
 
@@ -274,10 +298,10 @@ class SeasonalBaseline:
                     self._f[k].append(0.0)
                 for k in self._INTS:
                     self._i[k].append(0)
-                self._day.append([0.0] * 24)
-                self._day_n.append([0] * 24)
-                self._week.append([0.0] * 168)
-                self._week_n.append([0] * 168)
+                self._day.append(array("d", _ZERO_DAY))
+                self._day_n.append(array("H", _ZERO_DAY_N))
+                self._week.append(array("d", _ZERO_WEEK))
+                self._week_n.append(array("H", _ZERO_WEEK_N))
             out.append(i)
         return out
 
@@ -607,10 +631,10 @@ class SeasonalBaseline:
             "relative_floor": self.relative_floor,
             "names": list(self._names),
             "times": np.array([self.first_at, self.step], dtype=np.float64),
-            "day": np.array(self._day, dtype=np.float64).reshape(-1, 24),
-            "day_n": np.array(self._day_n, dtype=np.uint16).reshape(-1, 24),
-            "week": np.array(self._week, dtype=np.float64).reshape(-1, 168),
-            "week_n": np.array(self._week_n, dtype=np.uint16).reshape(-1, 168),
+            "day": _stack(self._day, np.float64, 24),
+            "day_n": _stack(self._day_n, np.uint16, 24),
+            "week": _stack(self._week, np.float64, 168),
+            "week_n": _stack(self._week_n, np.uint16, 168),
         }
         for k in self._FLOATS:
             state[k] = np.array(self._f[k], dtype=np.float64)
@@ -663,7 +687,7 @@ class SeasonalBaseline:
         base._names = names
         base._index = {name: i for i, name in enumerate(names)}
         base._f, base._i = floats, ints
-        base._day, base._day_n = day.tolist(), day_n.tolist()
-        base._week, base._week_n = week.tolist(), week_n.tolist()
+        base._day, base._day_n = _rows("d", day), _rows("H", day_n)
+        base._week, base._week_n = _rows("d", week), _rows("H", week_n)
         base.first_at, base.step = times
         return base

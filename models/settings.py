@@ -16,7 +16,7 @@ models.errors.SettingsError: threshold must be in (0, 1], got 1.5
 from __future__ import annotations
 
 import math
-from dataclasses import asdict, dataclass, fields
+from dataclasses import dataclass, fields
 from typing import Any
 
 from models.errors import SettingsError
@@ -147,7 +147,8 @@ class ModelSettings:
         >>> ModelSettings().to_dict()["trees"]
         10
         """
-        return asdict(self)
+        # Every field is a plain str/int/float: a flat copy, not ``asdict``'s recursive deep copy.
+        return {f.name: getattr(self, f.name) for f in fields(self)}
 
     @classmethod
     def from_dict(cls, data: dict[str, Any]) -> ModelSettings:
