@@ -123,7 +123,7 @@ class HalfSpaceTrees:
     """
 
     __slots__ = ("n_trees", "height", "window_size", "limits", "seed", "split",
-                 "features", "_index", "_low", "_high", "_feature", "_threshold",
+                 "features", "_index", "_low", "_high", "_feature", "_threshold", "_walk",
                  "_l_mass", "_r_mass", "counter", "_first_window", "_weights")
 
     def __init__(self, n_trees: int = 10, height: int = 8, window_size: int = 250,
@@ -153,6 +153,9 @@ class HalfSpaceTrees:
         self._low = self._high = np.zeros(0)
         self._feature = np.zeros((0, 0), dtype=np.uint8)
         self._threshold = np.zeros((0, 0), dtype=np.float32)
+        # (feature, threshold, the same as intp and float64) for :meth:`_path`: a cache, rebuilt
+        # whenever either array is replaced; not part of the state.
+        self._walk: tuple[np.ndarray, ...] = ()
         mass = _mass_dtype(window_size)
         self._l_mass = np.zeros((0, 0), dtype=mass)
         self._r_mass = np.zeros((0, 0), dtype=mass)
@@ -207,29 +210,35 @@ class HalfSpaceTrees:
             r = 2.0 * np.maximum(s - self._low, self._high - s)
             low, high = s - r, s + r
         features_by_level, thresholds_by_level = [], []
-        for _ in range(self.height):
+        # Plain fancy indexing ``a[tree, node, f]`` reads and writes the same elements as
+        # ``take_along_axis``/``put_along_axis`` with less overhead; every drawn number and every
+        # arithmetic operation is as before, so the trees are bit-identical.
+        tree_at = np.arange(trees)[:, None]
+        for level in range(self.height):
             width = high - low
+            node_at = np.arange(width.shape[1])[None, :]
             if self.split == "padded":
                 # Feature drawn with probability proportional to its width (inverse CDF).
                 cum = np.cumsum(width, axis=2)
                 u = rng.random(cum.shape[:2]) * cum[:, :, -1]
                 f = np.minimum((cum <= u[:, :, None]).sum(axis=2), n_f - 1)
-                a = np.take_along_axis(low, f[:, :, None], axis=2)[:, :, 0]
-                w = np.take_along_axis(width, f[:, :, None], axis=2)[:, :, 0]
+                a = low[tree_at, node_at, f]
+                w = width[tree_at, node_at, f]
                 at = a + w * (_PADDING + (1.0 - 2.0 * _PADDING) * rng.random(f.shape))
             else:
                 f = rng.integers(n_f, size=width.shape[:2])
-                a = np.take_along_axis(low, f[:, :, None], axis=2)[:, :, 0]
-                b = np.take_along_axis(high, f[:, :, None], axis=2)[:, :, 0]
+                a = low[tree_at, node_at, f]
+                b = high[tree_at, node_at, f]
                 at = 0.5 * (a + b)
             features_by_level.append(f)
             thresholds_by_level.append(at)
+            if level == self.height - 1:
+                break  # the leaves' ranges are never used
             # Children of node k of this level are 2k (left: high[f] = at) and 2k + 1 (right).
-            left_high, right_low = high.copy(), low.copy()
-            np.put_along_axis(left_high, f[:, :, None], at[:, :, None], axis=2)
-            np.put_along_axis(right_low, f[:, :, None], at[:, :, None], axis=2)
-            low = np.stack([low, right_low], axis=2).reshape(trees, -1, n_f)
-            high = np.stack([left_high, high], axis=2).reshape(trees, -1, n_f)
+            low = np.repeat(low, 2, axis=1)
+            high = np.repeat(high, 2, axis=1)
+            high[tree_at, 2 * node_at, f] = at
+            low[tree_at, 2 * node_at + 1, f] = at
         feature = np.concatenate(features_by_level, axis=1).astype(_feature_dtype(n_f))
         threshold = np.concatenate(thresholds_by_level, axis=1)
         self._feature = feature
@@ -259,21 +268,46 @@ class HalfSpaceTrees:
         # numpy gathers, which pay a fixed overhead per call.
         if v.shape != self._low.shape:
             raise SettingsError(f"expected a vector of {self._low.size} tree features, got shape {v.shape}")
-        go_right = (v[self._feature] >= self._threshold).tobytes()
-        n_internal, n_nodes, height = 2 ** self.height - 1, self.n_nodes, self.height
+        # ``take`` gathers the same values as ``v[feature]`` with less per-call overhead, and the
+        # comparison with float64 thresholds is the one numpy does anyway for a float32 array
+        # against float64 values (float32 -> float64 is exact), without a conversion per call.
+        walk = self._walk
+        if not walk or walk[0] is not self._feature or walk[1] is not self._threshold:
+            walk = self._walk = (self._feature, self._threshold, self._feature.astype(np.intp),
+                                 self._threshold.astype(np.float64))
+        go_right = (v.take(walk[2]) >= walk[3]).tobytes()
+        n_internal, n_nodes, height, n_trees = 2 ** self.height - 1, self.n_nodes, self.height, self.n_trees
         out: list[int] = []
-        for t in range(self.n_trees):
-            base, offset, node = t * n_internal, t * n_nodes, 0
-            out.append(offset)
-            for _ in range(height):
+        append = out.append
+        levels = range(height)
+        for base, offset in zip(range(0, n_trees * n_internal, n_internal),
+                                range(0, n_trees * n_nodes, n_nodes)):
+            node = 0
+            append(offset)
+            for _ in levels:
                 node = 2 * node + 1 + go_right[base + node]
-                out.append(offset + node)
-        return np.array(out, dtype=np.intp).reshape(self.n_trees, height + 1)
+                append(offset + node)
+        return np.array(out, dtype=np.intp).reshape(n_trees, height + 1)
 
     def _score_path(self, path: np.ndarray) -> float:
         """Normalised score of paths of shape ``(..., n_trees, height + 1)``, summed per row."""
         if self._first_window:
             return 0.0
+        if path.ndim == 2:
+            # One window: a plain-Python walk over its few masses costs less than the array
+            # operations of :meth:`_score_paths` (their fixed overhead per call dominates at this
+            # size). The same integer sum, so the same float: node ``k`` of a tree adds
+            # ``mass << k``, and the walk stops after the first node under the size limit.
+            limit = self.size_limit
+            total = 0
+            for row in self._r_mass.ravel()[path].tolist():
+                k = 0
+                for mass in row:
+                    total += mass << k
+                    if mass < limit:
+                        break
+                    k += 1
+            return 1.0 - total / self.max_score
         return float(self._score_paths(path[None])[0])
 
     def _score_paths(self, paths: np.ndarray) -> np.ndarray:

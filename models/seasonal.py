@@ -71,7 +71,7 @@ from typing import Any
 import numpy as np
 
 from models.base import split_features
-from models.baseline import Z_LIMIT, alpha_from_half_life, normal_equivalent
+from models.baseline import Z_LIMIT, alpha_from_half_life
 from models.errors import CorruptState, SettingsError
 
 __all__ = ["Evidence", "SeasonalBaseline", "slots_of", "tail_deviate"]
@@ -130,6 +130,7 @@ TAIL_FACTOR = 64.0
 DRIFT_LAMBDA = 0.1
 DRIFT_CLIP = TAIL_LEVEL
 _DRIFT_VAR0 = DRIFT_LAMBDA / (2.0 - DRIFT_LAMBDA)
+_DRIFT_VAR0_PRIOR = _DRIFT_VAR0 * TAIL_PRIOR_WINDOWS
 #: Statistics added by model state format 3; a format-2 state reads them as zeros (no drift
 #: seen yet, no open cluster), which is the state of a fresh feature.
 NEW_IN_FORMAT_3 = ("ez", "ez2", "ezw", "yr", "yw", "yn", "ye", "rr", "rrw")
@@ -161,15 +162,10 @@ STUCK_DIRECT_RATE = 0.01
 #: on every window; the rule as it is, with a second window away judged by its deviation, gives
 #: 39.5 / 63.3 at 0.95).
 HOLD_RATE = 0.95
-_N_PRED = 3
-
-
-def _abs_z(ev: Evidence) -> float:
-    return abs(ev.z)
-
-
-def _abs_drift(ev: Evidence) -> float:
-    return abs(ev.drift)
+# Products of constants used per feature per window (the same products, computed once).
+_SQRT2 = math.sqrt(2.0)
+_GAUSS_RATE_PRIOR = GAUSS_RATE * TAIL_PRIOR_WINDOWS
+_GAUSS_EXCESS_PRIOR = GAUSS_EXCESS * TAIL_PRIOR_EVENTS
 
 
 def slots_of(at: float) -> tuple[int, int]:
@@ -255,7 +251,8 @@ class SeasonalBaseline:
     _INTS = ("count", "run") + NEW_INTS_IN_FORMAT_4
 
     __slots__ = ("half_life", "alpha", "absolute_floor", "relative_floor", "_names", "_index",
-                 "_f", "_i", "_day", "_day_n", "_week", "_week_n", "first_at", "step")
+                 "_f", "_i", "_day", "_day_n", "_week", "_week_n", "first_at", "step",
+                 "_slot_alphas")
 
     def __init__(self, half_life: float = 24.0, *, absolute_floor: float = 1e-9,
                  relative_floor: float = 1e-3) -> None:
@@ -280,6 +277,9 @@ class SeasonalBaseline:
         self._week_n: list[array] = []
         self.first_at: float = math.nan  # start of the first window seen with a time
         self.step: float = math.nan  # smallest gap seen between window starts
+        # (step, day alpha, week alpha) of the last update: a cache of :meth:`_slot_alpha`,
+        # which depends only on the step (not part of the state).
+        self._slot_alphas: tuple[float, float, float] = (math.nan, 0.0, 0.0)
 
     @property
     def features(self) -> tuple[str, ...]:
@@ -323,48 +323,79 @@ class SeasonalBaseline:
     def compare(self, idx: Sequence[int], values: Sequence[float], at: float | None
                 ) -> list[Evidence]:
         """Evidence for ``values`` at positions ``idx`` (from :meth:`locate`), before learning."""
+        # The predictions, the best-prediction choice and the tail probabilities of
+        # :meth:`_predictions`, :meth:`_best` and :meth:`_tail_p` are written out in the loop:
+        # it runs once per feature per window, where the calls and the per-call lookups of the
+        # statistics cost more than the arithmetic. Every expression keeps its operations and
+        # their order, so the results are bit-identical to those helpers'.
         out: list[Evidence] = []
+        append = out.append
         f, ints = self._f, self._i
         level, off_d, off_w = f["level"], f["off_day"], f["off_week"]
         err0, err1, err2, ew, ew2 = f["err0"], f["err1"], f["err2"], f["ew"], f["ew2"]
         dscale, last, rep, repw = f["dscale"], f["last"], f["rep"], f["repw"]
         ez, ez2, ezw = f["ez"], f["ez2"], f["ezw"]
         rr, rrw = f["rr"], f["rrw"]
+        xr, xw, xn, xe = f["xr"], f["xw"], f["xn"], f["xe"]
+        yr, yw, yn, ye = f["yr"], f["yw"], f["yn"], f["ye"]
         count, run = ints["count"], ints["run"]
         held, away_n = f["held"], ints["away"]
         use_day, use_week = self._cycles(at)
-        if at is not None:
-            hour, how = slots_of(at)
+        hour, how = slots_of(at) if at is not None else (0, 0)
+        day, day_n, week, week_n = self._day, self._day_n, self._week, self._week_n
         floor_abs, floor_rel = self.absolute_floor, self.relative_floor
         names = self._names
+        nan, sqrt, erfc, exp, log1p = math.nan, math.sqrt, math.erfc, math.exp, math.log1p
         for i, x in zip(idx, values):
             n = count[i]
             if n == 0:
-                out.append(Evidence(math.nan, 0.0, 0.0, 0.0, False))
+                append(Evidence(nan, 0.0, 0.0, 0.0, False))
                 continue
-            preds = self._predictions(i, use_day, use_week, hour if at is not None else 0,
-                                      how if at is not None else 0)
-            best = self._best(i)
-            p = preds[best]
+            p0 = level[i]
+            p1 = day[i][hour] + off_d[i] if use_day and day_n[i][hour] else p0
+            p2 = week[i][how] + off_w[i] if use_week and week_n[i][how] else p1
+            e = err0[i]
+            p = p0
+            e1 = err1[i]
+            if e1 < PREFER_SIMPLER * e:
+                e, p = e1, p1
+            e2 = err2[i]
+            if e2 < PREFER_SIMPLER * e:
+                e, p = e2, p2
             if n < 2:
-                out.append(Evidence(p, 0.0, 0.0, 0.0, False))
+                append(Evidence(p, 0.0, 0.0, 0.0, False))
                 continue
             floor = floor_abs + floor_rel * abs(p)
-            if names[i] == "count":
-                floor = max(floor, math.sqrt(abs(p)))
-            e = (err0, err1, err2)[best][i]
-            sd = max(MAD_TO_SD * e, floor)
+            is_count = names[i] == "count"
+            if is_count:
+                root = sqrt(abs(p))
+                if root > floor:
+                    floor = root
+            sd = MAD_TO_SD * e
+            if floor > sd:
+                sd = floor
             share = ew2[i] / (ew[i] * ew[i])  # 1 / effective sample size of the error EWMA
             t = (x - p) / sd
             t = Z_LIMIT if t > Z_LIMIT else -Z_LIMIT if t < -Z_LIMIT else t
-            z = normal_equivalent(t / math.sqrt(1.0 + share), 1.0 / share - 1.0) if share < 1.0 else 0.0
-            dsd = max(MAD_TO_SD * dscale[i], floor)
-            c = (x - last[i]) / dsd
+            z = 0.0
+            if share < 1.0:
+                # normal_equivalent(t / sqrt(1 + share), 1 / share - 1), written out.
+                tn = t / sqrt(1.0 + share)
+                dof = 1.0 / share - 1.0
+                if not dof <= 0.0:  # as normal_equivalent tests it (NaN included)
+                    z = (8.0 * dof + 1.0) / (8.0 * dof + 3.0) * sqrt(dof * log1p(tn * tn / dof))
+                    if not tn >= 0.0:
+                        z = -z
+            dsd = MAD_TO_SD * dscale[i]
+            if floor > dsd:
+                dsd = floor
+            x_last = last[i]
+            c = (x - x_last) / dsd
             c = Z_LIMIT if c > Z_LIMIT else -Z_LIMIT if c < -Z_LIMIT else c
             stuck = 0.0
             p_stuck = 1.0
             q = 1.0
-            if x == last[i]:
+            if x == x_last:
                 # Repeat rate with half a repeat of prior evidence; the run includes this window.
                 q = (rep[i] + 0.5) / (repw[i] + 1.0)
                 if q < STUCK_MAX_RATE:
@@ -378,17 +409,41 @@ class SeasonalBaseline:
                     p_stuck = q * q2 ** run[i]
                     stuck = tail_deviate(p_stuck)
             zc = DRIFT_CLIP if z > DRIFT_CLIP else -DRIFT_CLIP if z < -DRIFT_CLIP else z
-            drift = (ez[i] + DRIFT_LAMBDA * (zc - ez[i])) / math.sqrt(
-                (ez2[i] + _DRIFT_VAR0 * TAIL_PRIOR_WINDOWS) / (ezw[i] + TAIL_PRIOR_WINDOWS))
-            ev = Evidence(p, z, c, stuck, True, 1.0, drift)
+            ez_i = ez[i]
+            drift = (ez_i + DRIFT_LAMBDA * (zc - ez_i)) / sqrt(
+                (ez2[i] + _DRIFT_VAR0_PRIOR) / (ezw[i] + TAIL_PRIOR_WINDOWS))
+            # The "x" tail (deviation) of |z|, and of ``stuck`` when it is judged there.
+            rate_x = (xr[i] + _GAUSS_RATE_PRIOR) / (xw[i] + TAIL_PRIOR_WINDOWS)
+            beta_x = (xe[i] + _GAUSS_EXCESS_PRIOR) / (xn[i] + TAIL_PRIOR_EVENTS)
             if stuck > 0.0 and q >= STUCK_DIRECT_RATE:
-                p_stuck = self._tail_p(i, stuck, "x")
+                gauss = erfc(stuck / _SQRT2)
+                over = stuck - TAIL_LEVEL
+                tail = rate_x * exp(-(over if over > 0.0 else 0.0) / beta_x)
+                p_stuck = tail if tail > gauss else gauss
             # Two looks at the deviation (this window, the recent run of windows): the drift's
             # chance counts twice, so a single spike keeps the full sensitivity of ``z``.
-            ev.p = min(self._tail_p(i, abs(z), "x"), 2.0 * self._tail_p(i, abs(drift), "y"), p_stuck)
-            if names[i] != "count":
+            strength = abs(z)
+            gauss = erfc(strength / _SQRT2)
+            over = strength - TAIL_LEVEL
+            tail = rate_x * exp(-(over if over > 0.0 else 0.0) / beta_x)
+            p_z = tail if tail > gauss else gauss
+            strength = abs(drift)
+            gauss = erfc(strength / _SQRT2)
+            over = strength - TAIL_LEVEL
+            tail = ((yr[i] + _GAUSS_RATE_PRIOR) / (yw[i] + TAIL_PRIOR_WINDOWS)) * exp(
+                -(over if over > 0.0 else 0.0)
+                / ((ye[i] + _GAUSS_EXCESS_PRIOR) / (yn[i] + TAIL_PRIOR_EVENTS)))
+            p_d = 2.0 * (tail if tail > gauss else gauss)
+            # min(p_z, p_d, p_stuck), the first smallest as the builtin picks it.
+            p_ev = p_z
+            if p_d < p_ev:
+                p_ev = p_d
+            if p_stuck < p_ev:
+                p_ev = p_stuck
+            is_held = False
+            if not is_count:
                 q_hold = (rep[i] + 0.5) / (repw[i] + 1.0)
-                away = 0 if x == held[i] or x == last[i] else away_n[i] + 1
+                away = 0 if x == held[i] or x == x_last else away_n[i] + 1
                 if q_hold >= HOLD_RATE and away <= 1:
                     # A feature that holds its value (a restart counter at 0): its deviation
                     # scale is made of a handful of changes, so any change is a huge ``z`` and
@@ -396,9 +451,11 @@ class SeasonalBaseline:
                     # at its value or one window away, a window is no rarer than a change of
                     # this feature has been; a second window away in a row (a counter that keeps
                     # counting, a light switched on) is judged by its deviation again.
-                    ev.p = max(ev.p, 1.0 - q_hold)
-                    ev.held = True
-            out.append(ev)
+                    held_p = 1.0 - q_hold
+                    if held_p > p_ev:
+                        p_ev = held_p
+                    is_held = True
+            append(Evidence(p, z, c, stuck, True, p_ev, drift, is_held))
         return out
 
     def _tail_p(self, i: int, strength: float, kind: str) -> float:
@@ -418,19 +475,26 @@ class SeasonalBaseline:
         """
         f = self._f
         k = 0.5 ** (1.0 / (TAIL_FACTOR * self.half_life))
-        for kind, pick in (("x", _abs_z), ("y", _abs_drift)):
-            r, w, n, e = (f[kind + s] for s in "rwne")
-            for i, ev in zip(idx, evidence):
-                if not ev.scorable or ev.held:
-                    # A held feature's change has no measured size (see HOLD_RATE): it must
-                    # not teach the tail that a second window away is routine.
-                    continue
-                excess = pick(ev) - TAIL_LEVEL
-                hit = excess > 0.0
-                r[i] = k * r[i] + (1.0 if hit else 0.0)
-                w[i] = k * w[i] + 1.0
-                n[i] = k * n[i] + (1.0 if hit else 0.0)
-                e[i] = k * e[i] + (excess if hit else 0.0)
+        # Both tails ("x": |z|, "y": |drift|) in one pass; they are separate statistics.
+        xr, xw, xn, xe = f["xr"], f["xw"], f["xn"], f["xe"]
+        yr, yw, yn, ye = f["yr"], f["yw"], f["yn"], f["ye"]
+        for i, ev in zip(idx, evidence):
+            if not ev.scorable or ev.held:
+                # A held feature's change has no measured size (see HOLD_RATE): it must
+                # not teach the tail that a second window away is routine.
+                continue
+            excess = abs(ev.z) - TAIL_LEVEL
+            hit = excess > 0.0
+            xr[i] = k * xr[i] + (1.0 if hit else 0.0)
+            xw[i] = k * xw[i] + 1.0
+            xn[i] = k * xn[i] + (1.0 if hit else 0.0)
+            xe[i] = k * xe[i] + (excess if hit else 0.0)
+            excess = abs(ev.drift) - TAIL_LEVEL
+            hit = excess > 0.0
+            yr[i] = k * yr[i] + (1.0 if hit else 0.0)
+            yw[i] = k * yw[i] + 1.0
+            yn[i] = k * yn[i] + (1.0 if hit else 0.0)
+            ye[i] = k * ye[i] + (excess if hit else 0.0)
 
     def reset_drift(self) -> None:
         """Forget the running drift of every feature (the evidence that opened an alert is spent)."""
@@ -532,10 +596,18 @@ class SeasonalBaseline:
         keep = 1.0 - a
         ks = 0.5 ** (1.0 / (SCALE_FACTOR * self.half_life))
         kr = 0.5 ** (1.0 / (REPEAT_FACTOR * self.half_life))
-        a_day = self._slot_alpha(DAY_S) if at is not None else 0.0
-        a_week = self._slot_alpha(WEEK_S) if at is not None else 0.0
+        if at is not None:
+            cached = self._slot_alphas
+            if cached[0] == self.step:  # never true for a NaN step: then it is recomputed
+                a_day, a_week = cached[1], cached[2]
+            else:
+                a_day, a_week = self._slot_alpha(DAY_S), self._slot_alpha(WEEK_S)
+                self._slot_alphas = (self.step, a_day, a_week)
+        else:
+            a_day = a_week = 0.0
         level, lw, off_d, off_w = f["level"], f["lw"], f["off_day"], f["off_week"]
-        errs = (f["err0"], f["err1"], f["err2"])
+        err0, err1, err2 = f["err0"], f["err1"], f["err2"]
+        ks2 = ks * ks
         ew, ew2, dscale, dw, rep, repw = f["ew"], f["ew2"], f["dscale"], f["dw"], f["rep"], f["repw"]
         rr, rrw = f["rr"], f["rrw"]
         count = ints["count"]
@@ -549,16 +621,21 @@ class SeasonalBaseline:
                     week[i][how], week_n[i][how] = x, 1
                 count[i] = 1
                 continue
-            preds = self._predictions(i, use_day, use_week, hour, how)
+            # The predictions of :meth:`_predictions`, written out (the same operations).
+            p0 = level[i]
+            p1 = day[i][hour] + off_d[i] if use_day and day_n[i][hour] else p0
+            p2 = week[i][how] + off_w[i] if use_week and week_n[i][how] else p1
             # Errors: normalised weights (a running mean at first, as pandas' adjust=True).
             w = ks * ew[i] + 1.0
-            for k in range(_N_PRED):
-                errs[k][i] += (abs(x - preds[k]) - errs[k][i]) / w
-            ew[i], ew2[i] = w, ks * ks * ew2[i] + 1.0
+            err0[i] += (abs(x - p0) - err0[i]) / w
+            err1[i] += (abs(x - p1) - err1[i]) / w
+            err2[i] += (abs(x - p2) - err2[i]) / w
+            ew[i], ew2[i] = w, ks2 * ew2[i] + 1.0
             wd = ks * dw[i] + 1.0
-            dscale[i] += (abs(x - last[i]) - dscale[i]) / wd
+            x_last = last[i]
+            dscale[i] += (abs(x - x_last) - dscale[i]) / wd
             dw[i] = wd
-            same = 1.0 if x == last[i] else 0.0
+            same = 1.0 if x == x_last else 0.0
             rep[i] = kr * rep[i] + same
             repw[i] = kr * repw[i] + 1.0
             if run[i] > 0 and not same:
@@ -582,18 +659,21 @@ class SeasonalBaseline:
                 nd = rown[hour]
                 if nd:
                     off_d[i] += a * ((x - row[hour]) - off_d[i])
-                    row[hour] += max(a_day, 1.0 / (nd + 1)) * (x - row[hour])
+                    # max(a_day, 1 / (nd + 1)), as the builtin picks it.
+                    rate = 1.0 / (nd + 1)
+                    row[hour] += (rate if rate > a_day else a_day) * (x - row[hour])
                 else:
                     row[hour] = x
-                rown[hour] = min(nd + 1, 65535)
+                rown[hour] = nd + 1 if nd < 65535 else 65535
                 row, rown = week[i], week_n[i]
                 nw = rown[how]
                 if nw:
                     off_w[i] += a * ((x - row[how]) - off_w[i])
-                    row[how] += max(a_week, 1.0 / (nw + 1)) * (x - row[how])
+                    rate = 1.0 / (nw + 1)
+                    row[how] += (rate if rate > a_week else a_week) * (x - row[how])
                 else:
                     row[how] = x
-                rown[how] = min(nw + 1, 65535)
+                rown[how] = nw + 1 if nw < 65535 else 65535
             count[i] = n + 1
 
     def observe_step(self, gap: float) -> None:

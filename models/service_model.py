@@ -162,7 +162,7 @@ class ServiceModel:
 
     __slots__ = ("service", "settings", "kind", "windows_seen", "_baseline", "_trees",
                  "_cal_trees", "_alert_on", "_alert_len", "_calm",
-                 "_shift", "_shift_n", "_last_at")
+                 "_shift", "_shift_n", "_last_at", "_tree_slots", "_tree_slots_for")
 
     def __init__(self, service: str, settings: ModelSettings) -> None:
         if not isinstance(service, str) or not service:
@@ -187,6 +187,10 @@ class ServiceModel:
         self._shift: dict[int, list[float]] = {}
         self._shift_n = 0
         self._last_at = math.nan
+        # Tree-vector positions (level, change) of each feature name, for the trees in
+        # ``_tree_slots_for`` (a cache: rebuilt if the trees are replaced; not part of the state).
+        self._tree_slots: dict[str, tuple[int, int] | None] = {}
+        self._tree_slots_for: HalfSpaceTrees | None = None
 
     def __repr__(self) -> str:
         return (f"ServiceModel(service={self.service!r}, kind={self.kind!r}, "
@@ -223,9 +227,20 @@ class ServiceModel:
         raw = 0.0
         path = None
         ready_t = False
-        if self.kind == "combined":
-            p_min = min((e.p for e in evidence if e.scorable), default=1.0)
-            scorable = sum(e.scorable for e in evidence)
+        tree_raw = None  # the trees' score of this window, once computed (learning reuses it)
+        kind = self.kind
+        if kind != "half_space_trees":
+            # The smallest tail probability among the scorable features (the first smallest,
+            # as ``min`` picks it; 1.0 if none) and their count, in one pass.
+            p_min = 1.0
+            scorable = 0
+            for e in evidence:
+                if e.scorable:
+                    pe = e.p
+                    if scorable == 0 or pe < p_min:
+                        p_min = pe
+                    scorable += 1
+        if kind == "combined":
             p = min(1.0, scorable * p_min)
             raw = tail_deviate(0.5 * p_min)
             path = self._tree_path(names, evidence)
@@ -234,14 +249,13 @@ class ServiceModel:
                 if ready_t and scorable >= _JOINT_MIN_FEATURES:
                     # The trees see the metrics jointly; they may open an alert only where there are
                     # enough metrics for a joint pattern to exist (Bonferroni over the two scorers).
-                    p_t = self._cal_trees.p_value(self._trees._score_path(path))
+                    tree_raw = self._trees._score_path(path)
+                    p_t = self._cal_trees.p_value(tree_raw)
                     p = min(1.0, 2.0 * min(p, p_t))
         elif self._trees is None:
             # Baseline kinds: each feature's own tail probability, Bonferroni-corrected for the
             # number of features compared (the window is as rare as its rarest feature, times
             # the number of chances it had to be that rare).
-            p_min = min((e.p for e in evidence if e.scorable), default=1.0)
-            scorable = sum(e.scorable for e in evidence)
             p = min(1.0, scorable * p_min)
             raw = tail_deviate(0.5 * p_min)
         else:
@@ -267,10 +281,15 @@ class ServiceModel:
             baseline.reset_drift()
         baseline.update(idx, values, at, learn=learn, evidence=evidence)
         if learn and path is not None:
-            tree_raw = self._trees._score_path(path) if self.kind == "combined" else raw
-            self._trees._learn_path(path)
             if ready_t:
+                # Nothing between scoring and here changes the trees: a score already taken is
+                # this window's score.
+                if self.kind != "combined":
+                    tree_raw = raw
+                elif tree_raw is None:
+                    tree_raw = self._trees._score_path(path)
                 self._cal_trees.learn(tree_raw)
+            self._trees._learn_path(path)
         return Assessment(score, raw, anomalous, warming_up, contributors)
 
     def _decide(self, score: float, warming_up: bool, idx: list[int], values: list[float],
@@ -313,22 +332,40 @@ class ServiceModel:
             if not names:
                 return None  # nothing to build the trees on yet
             trees.build([f"{n}|{part}" for n in names for part in _TREE_PARTS])
-        v = np.full(len(trees.features), 0.5)  # missing -> the prediction itself -> 0.5
-        index = trees.feature_index
+        slots = self._tree_slots
+        if self._tree_slots_for is not trees:
+            slots.clear()
+            self._tree_slots_for = trees
+        v = [0.5] * len(trees.features)  # missing -> the prediction itself -> 0.5
+        tanh = math.tanh
         for name, e in zip(names, evidence):
-            i = index.get(f"{name}|level")
-            if i is not None and e.scorable:
-                v[i] = _squash(e.z)
-                v[index[f"{name}|change"]] = _squash(e.change)
-        return trees._path(v)
+            if name in slots:
+                slot = slots[name]
+            else:
+                index = trees.feature_index
+                i = index.get(f"{name}|level")
+                slot = slots[name] = None if i is None else (i, index[f"{name}|change"])
+            if slot is not None and e.scorable:
+                # _squash, written out (the same operations).
+                v[slot[0]] = 0.5 + 0.5 * tanh(e.z / SQUASH_Z)
+                v[slot[1]] = 0.5 + 0.5 * tanh(e.change / SQUASH_Z)
+        return trees._path(np.array(v, dtype=np.float64))
 
     @staticmethod
     def _contributors(names: list[str], values: list[float],
                       evidence: list[Evidence]) -> list[Contribution]:
-        order = [i for i in range(len(names)) if evidence[i].scorable and evidence[i].strength > 0.0]
         # Rarest first (each feature's own tail probability), then the strongest evidence; the
-        # name breaks ties so the list never depends on input order.
-        order.sort(key=lambda i: (evidence[i].p, -evidence[i].strength, names[i]))
+        # name breaks ties so the list never depends on input order. ``Evidence.strength`` is
+        # computed once per feature here (the same ``max(|z|, stuck)``).
+        order = []
+        keys = {}
+        for i, e in enumerate(evidence):
+            if e.scorable:
+                strength = max(abs(e.z), e.stuck)
+                if strength > 0.0:
+                    order.append(i)
+                    keys[i] = (e.p, -strength, names[i])
+        order.sort(key=keys.__getitem__)
         return [Contribution(names[i], values[i], evidence[i].expected, evidence[i].z)
                 for i in order[:MAX_CONTRIBUTORS]]
 
