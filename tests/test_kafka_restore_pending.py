@@ -40,19 +40,23 @@ def _wait_for(path, event: str, timeout: float = 60.0) -> dict:
     raise AssertionError(f"no {event!r} in the log:\n{path.read_text()[-3000:]}")
 
 
-def test_restore_reads_a_transaction_that_commits_while_it_runs(kafka_bootstrap, kafka_topic, tmp_path):
+def _open_previous_owner(bootstrap: str, kafka_topic, tmp_path, value: bytes):
+    """Topics and a config for one instance, and the previous owner's last transaction on the changelog:
+    one record written and flushed, not yet committed or aborted."""
     t = Topics(input=kafka_topic("in", 1), output=kafka_topic("scores", 1), rejects=kafka_topic("rejects", 1),
                changelog=kafka_topic("state", 1, {"cleanup.policy": "compact"}), repartition=kafka_topic("rekey", 1),
                group=f"tw-{time.monotonic_ns()}")
-    cfg = write_config(tmp_path / "tw.toml", kafka_bootstrap, t)
-
-    # The previous owner's last transaction: written and flushed, not yet committed.
-    prev = Producer({"bootstrap.servers": kafka_bootstrap, "transactional.id": f"{t.group}.previous-owner"})
+    cfg = write_config(tmp_path / "tw.toml", bootstrap, t)
+    prev = Producer({"bootstrap.servers": bootstrap, "transactional.id": f"{t.group}.previous-owner"})
     prev.init_transactions(30)
     prev.begin_transaction()
-    prev.produce(t.changelog, key=b"m\x00ferry-ticketing", value=b"written by the previous owner", partition=0)
+    prev.produce(t.changelog, key=b"m\x00ferry-ticketing", value=value, partition=0)
     assert prev.flush(30) == 0
+    return cfg, prev
 
+
+def test_restore_reads_a_transaction_that_commits_while_it_runs(kafka_bootstrap, kafka_topic, tmp_path):
+    cfg, prev = _open_previous_owner(kafka_bootstrap, kafka_topic, tmp_path, b"written by the previous owner")
     log = tmp_path / "run.log"
     p = start_instance(cfg, "restorer", log)
     try:
@@ -71,16 +75,7 @@ def test_restore_reads_a_transaction_that_commits_while_it_runs(kafka_bootstrap,
 
 
 def test_restore_ends_when_an_open_transaction_aborts(kafka_bootstrap, kafka_topic, tmp_path):
-    t = Topics(input=kafka_topic("in", 1), output=kafka_topic("scores", 1), rejects=kafka_topic("rejects", 1),
-               changelog=kafka_topic("state", 1, {"cleanup.policy": "compact"}), repartition=kafka_topic("rekey", 1),
-               group=f"tw-{time.monotonic_ns()}")
-    cfg = write_config(tmp_path / "tw.toml", kafka_bootstrap, t)
-    prev = Producer({"bootstrap.servers": kafka_bootstrap, "transactional.id": f"{t.group}.previous-owner"})
-    prev.init_transactions(30)
-    prev.begin_transaction()
-    prev.produce(t.changelog, key=b"m\x00ferry-ticketing", value=b"never committed", partition=0)
-    assert prev.flush(30) == 0
-
+    cfg, prev = _open_previous_owner(kafka_bootstrap, kafka_topic, tmp_path, b"never committed")
     log = tmp_path / "run.log"
     p = start_instance(cfg, "restorer", log)
     try:
