@@ -258,13 +258,13 @@ def _wait_until_answers(bootstrap: str, deadline_s: float) -> bool:
 
 
 def _kafka_home(env: Mapping[str, str]) -> Path:
-    return Path(env.get("TIDEWATCH_KAFKA_HOME") or REPO_ROOT / ".cache" / "kafka")
+    return Path(env.get("TIDEWATCH_LOCAL_KAFKA_HOME") or REPO_ROOT / ".cache" / "kafka")
 
 
 def _local_port(env: Mapping[str, str]) -> int:
-    raw = env.get("TIDEWATCH_KAFKA_PORT") or str(DEFAULT_PORT)
+    raw = env.get("TIDEWATCH_LOCAL_KAFKA_PORT") or str(DEFAULT_PORT)
     if not raw.isdigit():
-        raise BrokerStartError(f"TIDEWATCH_KAFKA_PORT={raw!r} is not a port number")
+        raise BrokerStartError(f"TIDEWATCH_LOCAL_KAFKA_PORT={raw!r} is not a port number")
     return int(raw)
 
 

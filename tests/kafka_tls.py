@@ -7,7 +7,7 @@ and a broker certificate for ``127.0.0.1``/``localhost`` are made with the
 ``openssl`` command line (plus ``keytool`` for the Java truststore), and a
 separate broker is started with ``deploy/local-kafka/kafka.sh`` in its own cache
 directory, on free loopback ports, with the opt-in listener of
-``TIDEWATCH_KAFKA_TLS_PORT``. The session's ordinary broker
+``TIDEWATCH_LOCAL_KAFKA_TLS_PORT``. The session's ordinary broker
 (``tests/kafka_broker.py``) is not touched. The TLS broker is stopped, and its
 data removed, at the end of the session.
 
@@ -101,7 +101,7 @@ class TlsBroker:
     material
         The certificates and stores it was started with.
     home
-        Its ``TIDEWATCH_KAFKA_HOME`` (data, ``server.properties``, ``broker.log``).
+        Its ``TIDEWATCH_LOCAL_KAFKA_HOME`` (data, ``server.properties``, ``broker.log``).
     start_seconds
         Wall time from ``kafka.sh start`` (after the certificates) to the SSL listener answering.
 
@@ -234,7 +234,7 @@ def _shared_libs() -> Path:
     The TLS broker links them instead of fetching its own copy (about 45 MB).
     """
     env = {**os.environ, "TIDEWATCH_PYTHON": sys.executable}
-    home = Path(env.get("TIDEWATCH_KAFKA_HOME") or REPO_ROOT / ".cache" / "kafka")
+    home = Path(env.get("TIDEWATCH_LOCAL_KAFKA_HOME") or REPO_ROOT / ".cache" / "kafka")
     proc = _script("fetch", env)
     if proc.returncode != 0:
         raise TlsSetupError(f"kafka.sh fetch failed:\n{(proc.stdout + proc.stderr).strip()}")
@@ -273,16 +273,16 @@ def kafka_tls_broker(
     env = {
         **os.environ,
         "TIDEWATCH_PYTHON": sys.executable,
-        "TIDEWATCH_KAFKA_HOME": str(home),
-        "TIDEWATCH_KAFKA_PORT": str(port),
-        "TIDEWATCH_KAFKA_CONTROLLER_PORT": str(controller),
-        "TIDEWATCH_KAFKA_TLS_PORT": str(tls),
-        "TIDEWATCH_KAFKA_TLS_KEYSTORE": str(material.keystore),
-        "TIDEWATCH_KAFKA_TLS_TRUSTSTORE": str(material.truststore),
-        "TIDEWATCH_KAFKA_TLS_PASSWORD": material.password,
+        "TIDEWATCH_LOCAL_KAFKA_HOME": str(home),
+        "TIDEWATCH_LOCAL_KAFKA_PORT": str(port),
+        "TIDEWATCH_LOCAL_KAFKA_CONTROLLER_PORT": str(controller),
+        "TIDEWATCH_LOCAL_KAFKA_TLS_PORT": str(tls),
+        "TIDEWATCH_LOCAL_KAFKA_TLS_KEYSTORE": str(material.keystore),
+        "TIDEWATCH_LOCAL_KAFKA_TLS_TRUSTSTORE": str(material.truststore),
+        "TIDEWATCH_LOCAL_KAFKA_TLS_PASSWORD": material.password,
     }
     # Settings meant for the ordinary broker must not leak into this one.
-    env.pop("TIDEWATCH_KAFKA_EXTRA_PROPERTIES", None)
+    env.pop("TIDEWATCH_LOCAL_KAFKA_EXTRA_PROPERTIES", None)
     broker = TlsBroker(
         bootstrap=f"127.0.0.1:{tls}", plaintext_bootstrap=f"127.0.0.1:{port}",
         material=material, home=home, start_seconds=0.0,

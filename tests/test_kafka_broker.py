@@ -310,6 +310,20 @@ def test_restart_is_refused_off_the_local_broker(origin: str) -> None:
     assert hint in str(err.value)
 
 
+def test_script_variables_stay_out_of_the_config_override_prefix() -> None:
+    """``TIDEWATCH_KAFKA_<KEY>`` overrides ``[kafka]`` settings and an unknown key is a config error, so a
+    broker variable with that prefix, set for the local broker, would stop every ``tidewatch run`` started
+    from the same shell (or by a test) with "unknown key"."""
+    from service.config import load_config
+
+    names = set(re.findall(r"\b(TIDEWATCH_[A-Z_]*[A-Z])\b", KAFKA_SCRIPT.read_text()))
+    assert "TIDEWATCH_LOCAL_KAFKA_PORT" in names  # the pattern finds the script's variables
+    assert not {n for n in names if n.startswith("TIDEWATCH_KAFKA_")}, names
+    # And the config loader indeed ignores them.
+    cfg_env = {n: "1" for n in names}
+    load_config(None, environ=cfg_env)
+
+
 def test_broker_answers_is_false_when_nothing_listens() -> None:
     assert broker_answers(f"127.0.0.1:{_free_port()}", timeout=0.5) is False
 
@@ -319,9 +333,9 @@ def test_script_properties_follow_the_port_and_extra_file(tmp_path: Path) -> Non
     extra.write_text("group.initial.rebalance.delay.ms=250\nlog.cleaner.backoff.ms=500\n")
     env = {
         "PATH": "/usr/bin:/bin",
-        "TIDEWATCH_KAFKA_HOME": str(tmp_path / "home"),
-        "TIDEWATCH_KAFKA_PORT": "29092",
-        "TIDEWATCH_KAFKA_EXTRA_PROPERTIES": str(extra),
+        "TIDEWATCH_LOCAL_KAFKA_HOME": str(tmp_path / "home"),
+        "TIDEWATCH_LOCAL_KAFKA_PORT": "29092",
+        "TIDEWATCH_LOCAL_KAFKA_EXTRA_PROPERTIES": str(extra),
     }
     props = _script_properties(env)
     assert props["listeners"] == "PLAINTEXT://127.0.0.1:29092,CONTROLLER://127.0.0.1:29093"
@@ -337,15 +351,15 @@ def test_script_properties_follow_the_port_and_extra_file(tmp_path: Path) -> Non
 @pytest.mark.parametrize("port", ["abc", "0", "70000", "65535"])
 def test_script_refuses_bad_ports(port: str, tmp_path: Path) -> None:
     # 65535 itself is valid, but its default controller port (65536) is not.
-    env = {"PATH": "/usr/bin:/bin", "TIDEWATCH_KAFKA_HOME": str(tmp_path),
-           "TIDEWATCH_KAFKA_PORT": port}
+    env = {"PATH": "/usr/bin:/bin", "TIDEWATCH_LOCAL_KAFKA_HOME": str(tmp_path),
+           "TIDEWATCH_LOCAL_KAFKA_PORT": port}
     proc = _script("properties", env=env)
     assert proc.returncode != 0
     assert "port" in proc.stderr
 
 
 def test_script_status_when_not_running(tmp_path: Path) -> None:
-    env = {"PATH": "/usr/bin:/bin", "TIDEWATCH_KAFKA_HOME": str(tmp_path)}
+    env = {"PATH": "/usr/bin:/bin", "TIDEWATCH_LOCAL_KAFKA_HOME": str(tmp_path)}
     proc = _script("status", env=env)
     assert proc.returncode == 3
     assert "not running" in proc.stdout
@@ -402,7 +416,7 @@ _LAYOUT_KEYS = {
 
 
 def test_compose_broker_settings_match_the_local_broker(tmp_path: Path) -> None:
-    env = {"PATH": "/usr/bin:/bin", "TIDEWATCH_KAFKA_HOME": str(tmp_path)}
+    env = {"PATH": "/usr/bin:/bin", "TIDEWATCH_LOCAL_KAFKA_HOME": str(tmp_path)}
     local = {k: v for k, v in _script_properties(env).items() if k not in _LAYOUT_KEYS}
     assert "transaction.state.log.min.isr" in local  # the filter kept the tuning keys
     environment = _compose()["services"]["kafka"]["environment"]

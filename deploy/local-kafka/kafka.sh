@@ -14,27 +14,28 @@
 #   logs      tail the broker log
 #   properties  print the server.properties that start would write (nothing is started)
 #
-# Environment:
-#   TIDEWATCH_KAFKA_HOME             cache dir (default <repo>/.cache/kafka)
-#   TIDEWATCH_KAFKA_PORT             client port on 127.0.0.1 (default 19092)
-#   TIDEWATCH_KAFKA_CONTROLLER_PORT  controller port (default client port + 1)
-#   TIDEWATCH_KAFKA_TLS_PORT         opt-in: also listen with TLS (an SSL listener) on this
-#                                    port; unset, the default, means no TLS listener at all
-#   TIDEWATCH_KAFKA_TLS_KEYSTORE     PKCS12 keystore with the broker's key and certificate
-#   TIDEWATCH_KAFKA_TLS_TRUSTSTORE   PKCS12 truststore (optional; only used for client certificates)
-#   TIDEWATCH_KAFKA_TLS_PASSWORD     password of both stores (throwaway test stores only)
-#   TIDEWATCH_KAFKA_START_TIMEOUT    seconds to wait for readiness (default 90)
-#   TIDEWATCH_KAFKA_STOP_TIMEOUT     seconds between SIGTERM and SIGKILL (default 30)
-#   TIDEWATCH_KAFKA_HEAP             JVM heap flags (default "-Xms128m -Xmx512m")
-#   TIDEWATCH_KAFKA_JVM_OPTS         more JVM flags, appended (later flags win)
-#   TIDEWATCH_KAFKA_EXTRA_PROPERTIES file appended to server.properties (later keys win)
-#   TIDEWATCH_PYTHON                 interpreter with confluent_kafka, for the readiness probe
-#   JAVA_HOME                        JDK to run (default: java on PATH; Java 17+)
+# Environment (TIDEWATCH_LOCAL_KAFKA_*, never TIDEWATCH_KAFKA_*: that prefix is tidewatch's own
+# [kafka] config overrides, and a broker variable there would make `tidewatch run` refuse its config):
+#   TIDEWATCH_LOCAL_KAFKA_HOME             cache dir (default <repo>/.cache/kafka)
+#   TIDEWATCH_LOCAL_KAFKA_PORT             client port on 127.0.0.1 (default 19092)
+#   TIDEWATCH_LOCAL_KAFKA_CONTROLLER_PORT  controller port (default client port + 1)
+#   TIDEWATCH_LOCAL_KAFKA_TLS_PORT         opt-in: also listen with TLS (an SSL listener) on this
+#                                          port; unset, the default, means no TLS listener at all
+#   TIDEWATCH_LOCAL_KAFKA_TLS_KEYSTORE     PKCS12 keystore with the broker's key and certificate
+#   TIDEWATCH_LOCAL_KAFKA_TLS_TRUSTSTORE   PKCS12 truststore (optional; only used for client certificates)
+#   TIDEWATCH_LOCAL_KAFKA_TLS_PASSWORD     password of both stores (throwaway test stores only)
+#   TIDEWATCH_LOCAL_KAFKA_START_TIMEOUT    seconds to wait for readiness (default 90)
+#   TIDEWATCH_LOCAL_KAFKA_STOP_TIMEOUT     seconds between SIGTERM and SIGKILL (default 30)
+#   TIDEWATCH_LOCAL_KAFKA_HEAP             JVM heap flags (default "-Xms128m -Xmx512m")
+#   TIDEWATCH_LOCAL_KAFKA_JVM_OPTS         more JVM flags, appended (later flags win)
+#   TIDEWATCH_LOCAL_KAFKA_EXTRA_PROPERTIES file appended to server.properties (later keys win)
+#   TIDEWATCH_PYTHON                       interpreter with confluent_kafka, for the readiness probe
+#   JAVA_HOME                              JDK to run (default: java on PATH; Java 17+)
 set -euo pipefail
 
 HERE="$(cd "$(dirname "${BASH_SOURCE[0]}")" && pwd)"
 REPO="$(cd "$HERE/../.." && pwd)"
-KAFKA_HOME_DIR="${TIDEWATCH_KAFKA_HOME:-$REPO/.cache/kafka}"
+KAFKA_HOME_DIR="${TIDEWATCH_LOCAL_KAFKA_HOME:-$REPO/.cache/kafka}"
 LIBS="$KAFKA_HOME_DIR/libs"
 DATA="$KAFKA_HOME_DIR/data"
 PID_FILE="$KAFKA_HOME_DIR/broker.pid"
@@ -45,15 +46,15 @@ LOG4J_CONFIG="$HERE/log4j2.xml"
 
 # Loopback only: this broker is for one machine's tests, never for a network.
 HOST=127.0.0.1
-PORT="${TIDEWATCH_KAFKA_PORT:-19092}"
-CONTROLLER_PORT="${TIDEWATCH_KAFKA_CONTROLLER_PORT:-}"  # default PORT + 1, set by check_ports
+PORT="${TIDEWATCH_LOCAL_KAFKA_PORT:-19092}"
+CONTROLLER_PORT="${TIDEWATCH_LOCAL_KAFKA_CONTROLLER_PORT:-}"  # default PORT + 1, set by check_ports
 # Opt-in TLS listener; empty keeps the broker exactly as it is without it.
-TLS_PORT="${TIDEWATCH_KAFKA_TLS_PORT:-}"
-START_TIMEOUT="${TIDEWATCH_KAFKA_START_TIMEOUT:-90}"
-STOP_TIMEOUT="${TIDEWATCH_KAFKA_STOP_TIMEOUT:-30}"
+TLS_PORT="${TIDEWATCH_LOCAL_KAFKA_TLS_PORT:-}"
+START_TIMEOUT="${TIDEWATCH_LOCAL_KAFKA_START_TIMEOUT:-90}"
+STOP_TIMEOUT="${TIDEWATCH_LOCAL_KAFKA_STOP_TIMEOUT:-30}"
 # A test broker holds a handful of small topics; 512 MiB is plenty and leaves the
 # 2-core CI machine's memory to the test processes.
-HEAP="${TIDEWATCH_KAFKA_HEAP:--Xms128m -Xmx512m}"
+HEAP="${TIDEWATCH_LOCAL_KAFKA_HEAP:--Xms128m -Xmx512m}"
 JAVA="${JAVA_HOME:+$JAVA_HOME/bin/}java"
 TAIL_LINES=60
 
@@ -73,18 +74,18 @@ pick_python() {
 is_port() { [[ "$1" =~ ^[0-9]{1,5}$ ]] && ((10#$1 > 0 && 10#$1 < 65536)); }
 
 check_ports() {
-    is_port "$PORT" || die "TIDEWATCH_KAFKA_PORT='$PORT' is not a TCP port number"
+    is_port "$PORT" || die "TIDEWATCH_LOCAL_KAFKA_PORT='$PORT' is not a TCP port number"
     [[ -n "$CONTROLLER_PORT" ]] || CONTROLLER_PORT=$((10#$PORT + 1))
     is_port "$CONTROLLER_PORT" || die "controller port '$CONTROLLER_PORT' is not a TCP port number"
     [[ "$PORT" != "$CONTROLLER_PORT" ]] || die "client and controller port are both $PORT"
     if [[ -n "$TLS_PORT" ]]; then
-        is_port "$TLS_PORT" || die "TIDEWATCH_KAFKA_TLS_PORT='$TLS_PORT' is not a TCP port number"
+        is_port "$TLS_PORT" || die "TIDEWATCH_LOCAL_KAFKA_TLS_PORT='$TLS_PORT' is not a TCP port number"
         [[ "$TLS_PORT" != "$PORT" && "$TLS_PORT" != "$CONTROLLER_PORT" ]] ||
             die "TLS port $TLS_PORT is also the client or controller port"
-        [[ -n "${TIDEWATCH_KAFKA_TLS_KEYSTORE:-}" ]] ||
-            die "TIDEWATCH_KAFKA_TLS_PORT is set but TIDEWATCH_KAFKA_TLS_KEYSTORE is not"
-        [[ -n "${TIDEWATCH_KAFKA_TLS_PASSWORD:-}" ]] ||
-            die "TIDEWATCH_KAFKA_TLS_PORT is set but TIDEWATCH_KAFKA_TLS_PASSWORD is not"
+        [[ -n "${TIDEWATCH_LOCAL_KAFKA_TLS_KEYSTORE:-}" ]] ||
+            die "TIDEWATCH_LOCAL_KAFKA_TLS_PORT is set but TIDEWATCH_LOCAL_KAFKA_TLS_KEYSTORE is not"
+        [[ -n "${TIDEWATCH_LOCAL_KAFKA_TLS_PASSWORD:-}" ]] ||
+            die "TIDEWATCH_LOCAL_KAFKA_TLS_PORT is set but TIDEWATCH_LOCAL_KAFKA_TLS_PASSWORD is not"
     fi
 }
 
@@ -166,7 +167,7 @@ cmd_fetch() {
 # --- configuration ---------------------------------------------------------
 
 # Listener layout in one place. The SSL listener is appended only when
-# TIDEWATCH_KAFKA_TLS_PORT is set; its ssl.* settings come from tls_properties.
+# TIDEWATCH_LOCAL_KAFKA_TLS_PORT is set; its ssl.* settings come from tls_properties.
 listeners() {
     printf 'PLAINTEXT://%s:%s,CONTROLLER://%s:%s' "$HOST" "$PORT" "$HOST" "$CONTROLLER_PORT"
     [[ -z "$TLS_PORT" ]] || printf ',SSL://%s:%s' "$HOST" "$TLS_PORT"
@@ -185,16 +186,16 @@ protocol_map() {
 # keeps its default, none). PLAINTEXT stays the inter-broker and probe listener.
 tls_properties() {
     [[ -n "$TLS_PORT" ]] || return 0
-    printf '\n# --- opt-in TLS listener (TIDEWATCH_KAFKA_TLS_PORT) ---\n'
+    printf '\n# --- opt-in TLS listener (TIDEWATCH_LOCAL_KAFKA_TLS_PORT) ---\n'
     printf '# PKCS12 stores made by the caller (the tests make a throwaway CA with openssl).\n'
     printf 'ssl.keystore.type=PKCS12\n'
-    printf 'ssl.keystore.location=%s\n' "$TIDEWATCH_KAFKA_TLS_KEYSTORE"
-    printf 'ssl.keystore.password=%s\n' "$TIDEWATCH_KAFKA_TLS_PASSWORD"
-    printf 'ssl.key.password=%s\n' "$TIDEWATCH_KAFKA_TLS_PASSWORD"
-    if [[ -n "${TIDEWATCH_KAFKA_TLS_TRUSTSTORE:-}" ]]; then
+    printf 'ssl.keystore.location=%s\n' "$TIDEWATCH_LOCAL_KAFKA_TLS_KEYSTORE"
+    printf 'ssl.keystore.password=%s\n' "$TIDEWATCH_LOCAL_KAFKA_TLS_PASSWORD"
+    printf 'ssl.key.password=%s\n' "$TIDEWATCH_LOCAL_KAFKA_TLS_PASSWORD"
+    if [[ -n "${TIDEWATCH_LOCAL_KAFKA_TLS_TRUSTSTORE:-}" ]]; then
         printf 'ssl.truststore.type=PKCS12\n'
-        printf 'ssl.truststore.location=%s\n' "$TIDEWATCH_KAFKA_TLS_TRUSTSTORE"
-        printf 'ssl.truststore.password=%s\n' "$TIDEWATCH_KAFKA_TLS_PASSWORD"
+        printf 'ssl.truststore.location=%s\n' "$TIDEWATCH_LOCAL_KAFKA_TLS_TRUSTSTORE"
+        printf 'ssl.truststore.password=%s\n' "$TIDEWATCH_LOCAL_KAFKA_TLS_PASSWORD"
     fi
 }
 
@@ -257,11 +258,11 @@ group.min.session.timeout.ms=1000
 transaction.abort.timed.out.transaction.cleanup.interval.ms=1000
 EOF
         tls_properties
-        if [[ -n "${TIDEWATCH_KAFKA_EXTRA_PROPERTIES:-}" ]]; then
-            [[ -f "$TIDEWATCH_KAFKA_EXTRA_PROPERTIES" ]] ||
-                die "TIDEWATCH_KAFKA_EXTRA_PROPERTIES=$TIDEWATCH_KAFKA_EXTRA_PROPERTIES is not a file"
-            printf '\n# --- appended from %s (later keys win) ---\n' "$TIDEWATCH_KAFKA_EXTRA_PROPERTIES"
-            cat "$TIDEWATCH_KAFKA_EXTRA_PROPERTIES"
+        if [[ -n "${TIDEWATCH_LOCAL_KAFKA_EXTRA_PROPERTIES:-}" ]]; then
+            [[ -f "$TIDEWATCH_LOCAL_KAFKA_EXTRA_PROPERTIES" ]] ||
+                die "TIDEWATCH_LOCAL_KAFKA_EXTRA_PROPERTIES=$TIDEWATCH_LOCAL_KAFKA_EXTRA_PROPERTIES is not a file"
+            printf '\n# --- appended from %s (later keys win) ---\n' "$TIDEWATCH_LOCAL_KAFKA_EXTRA_PROPERTIES"
+            cat "$TIDEWATCH_LOCAL_KAFKA_EXTRA_PROPERTIES"
         fi
     }
 }
@@ -284,7 +285,7 @@ jvm_opts() {
         -XX:+ExitOnOutOfMemoryError \
         -Djava.awt.headless=true \
         "-Dlog4j2.configurationFile=$LOG4J_CONFIG" \
-        ${TIDEWATCH_KAFKA_JVM_OPTS:-}
+        ${TIDEWATCH_LOCAL_KAFKA_JVM_OPTS:-}
 }
 
 random_cluster_id() {
@@ -410,7 +411,7 @@ cmd_start() {
     local p
     for p in "$PORT" "$CONTROLLER_PORT" ${TLS_PORT:+"$TLS_PORT"}; do
         if port_in_use "$p"; then
-            die "something already listens on $HOST:$p (another broker? 'ss -ltnp' shows who); set TIDEWATCH_KAFKA_PORT to use other ports"
+            die "something already listens on $HOST:$p (another broker? 'ss -ltnp' shows who); set TIDEWATCH_LOCAL_KAFKA_PORT to use other ports"
         fi
     done
     libs_current || cmd_fetch

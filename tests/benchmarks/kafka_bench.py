@@ -66,10 +66,10 @@ def private_broker(port: int = DEFAULT_BENCH_PORT) -> Iterator[Broker]:
     if (SHARED_LIBS / ".pom-sha256").is_file():
         # kafka.sh skips the Maven fetch when libs/.pom-sha256 matches pom.xml.
         (home / "libs").symlink_to(SHARED_LIBS)
-    env = {**os.environ, "TIDEWATCH_KAFKA_HOME": str(home), "TIDEWATCH_KAFKA_PORT": str(port),
+    env = {**os.environ, "TIDEWATCH_LOCAL_KAFKA_HOME": str(home), "TIDEWATCH_LOCAL_KAFKA_PORT": str(port),
            "TIDEWATCH_PYTHON": sys.executable}
     # The benchmark loads the broker harder than the tests do; more heap than the test default.
-    env.setdefault("TIDEWATCH_KAFKA_HEAP", "-Xms512m -Xmx1g")
+    env.setdefault("TIDEWATCH_LOCAL_KAFKA_HEAP", "-Xms512m -Xmx1g")
     started = time.monotonic()
     proc = subprocess.run(["bash", str(KAFKA_SH), "start"], env=env, capture_output=True, text=True, timeout=600)
     if proc.returncode != 0:
