@@ -363,7 +363,6 @@ class HalfSpaceTrees:
         if rows.ndim != 2 or rows.shape[1] != len(self.features):
             raise SettingsError(f"rows must have shape (n, {len(self.features)})")
         out = np.empty(rows.shape[0])
-        n_internal = 2 ** self.height - 1
         tree = np.arange(self.n_trees, dtype=np.intp)
         feature = self._feature.astype(np.intp)
         pos = 0

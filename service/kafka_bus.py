@@ -519,16 +519,17 @@ class KafkaRunner:
         # hurry), stopping there would miss that transaction's state while the group hands us its input
         # offsets, and windows whose every message it held would never be scored. So reading goes on until
         # the end reaches this mark: the transaction commits (its state counts) or aborts (it does not).
-        ends = self._log_ends(conf, partitions)
+        bounds = self._log_bounds(conf, partitions)
         log.info("restoring state", extra={"event": "state_restoring", "partitions": partitions})
         restorer = Consumer(conf)
         states: dict[int, PartitionState] = {p: PartitionState() for p in partitions}
         try:
             todo = set()
             assignment = []
+            ends = {p: high for p, (_, high) in bounds.items()}
             for p in partitions:
-                low, _ = restorer.get_watermark_offsets(TopicPartition(k.changelog_topic, p), timeout=_CALL_TIMEOUT)
-                if ends[p] > low:
+                low, high = bounds[p]
+                if high > low:
                     todo.add(p)
                     assignment.append(TopicPartition(k.changelog_topic, p, OFFSET_BEGINNING))
             if assignment:
@@ -606,15 +607,15 @@ class KafkaRunner:
         log.info("state restored", extra={"event": "state_restored", "partitions": partitions, "models": n_models,
                                           "seconds": round(time.monotonic() - started, 3)})
 
-    def _log_ends(self, conf: dict[str, Any], partitions: list[int]) -> dict[int, int]:
-        """The changelog's end offsets (high watermarks, read uncommitted) for ``partitions``."""
+    def _log_bounds(self, conf: dict[str, Any], partitions: list[int]) -> dict[int, tuple[int, int]]:
+        """The changelog's (first offset, high watermark read uncommitted) for ``partitions``."""
         k = self.k
         while True:
             # A client of its own each time: one made before a broker restart can keep asking with a
             # stale leader epoch and be refused for good.
             probe = Consumer({**conf, "isolation.level": "read_uncommitted"})
             try:
-                return {p: probe.get_watermark_offsets(TopicPartition(k.changelog_topic, p), timeout=_CALL_TIMEOUT)[1]
+                return {p: probe.get_watermark_offsets(TopicPartition(k.changelog_topic, p), timeout=_CALL_TIMEOUT)
                         for p in partitions}
             except KafkaException as exc:
                 err = exc.args[0] if exc.args else None

@@ -55,20 +55,31 @@ def _open_previous_owner(bootstrap: str, kafka_topic, tmp_path, value: bytes):
     return cfg, prev
 
 
-def test_restore_reads_a_transaction_that_commits_while_it_runs(kafka_bootstrap, kafka_topic, tmp_path):
-    cfg, prev = _open_previous_owner(kafka_bootstrap, kafka_topic, tmp_path, b"written by the previous owner")
-    log = tmp_path / "run.log"
+def _restore_while_open(cfg, log, end) -> dict:
+    """Start an instance, let its restore meet the open transaction for HOLD_S, then ``end(events so far)``
+    (commit or abort); the ``state_restored`` event, after a clean stop."""
     p = start_instance(cfg, "restorer", log)
     try:
         _wait_for(log, "state_restoring")
         time.sleep(HOLD_S)
-        assert not any(e.get("event") == "state_restored" for e in _events(log)), (
-            "the restore ended at the stable offset, before the open transaction's records")
-        prev.commit_transaction(30)
+        end(_events(log))
         restored = _wait_for(log, "state_restored")
     finally:
         code = stop_instance(p)
     assert code == 0, log.read_text()[-3000:]
+    return restored
+
+
+def test_restore_reads_a_transaction_that_commits_while_it_runs(kafka_bootstrap, kafka_topic, tmp_path):
+    cfg, prev = _open_previous_owner(kafka_bootstrap, kafka_topic, tmp_path, b"written by the previous owner")
+    log = tmp_path / "run.log"
+
+    def commit(events: list[dict]) -> None:
+        assert not any(e.get("event") == "state_restored" for e in events), (
+            "the restore ended at the stable offset, before the open transaction's records")
+        prev.commit_transaction(30)
+
+    restored = _restore_while_open(cfg, log, commit)
     assert restored["seconds"] >= HOLD_S * 0.9, restored
     refused = [e for e in _events(log) if e.get("event") == "state_refused"]
     assert [e.get("service") for e in refused] == ["ferry-ticketing"], refused
@@ -77,14 +88,6 @@ def test_restore_reads_a_transaction_that_commits_while_it_runs(kafka_bootstrap,
 def test_restore_ends_when_an_open_transaction_aborts(kafka_bootstrap, kafka_topic, tmp_path):
     cfg, prev = _open_previous_owner(kafka_bootstrap, kafka_topic, tmp_path, b"never committed")
     log = tmp_path / "run.log"
-    p = start_instance(cfg, "restorer", log)
-    try:
-        _wait_for(log, "state_restoring")
-        time.sleep(HOLD_S)
-        prev.abort_transaction(30)
-        restored = _wait_for(log, "state_restored")
-    finally:
-        code = stop_instance(p)
-    assert code == 0, log.read_text()[-3000:]
+    restored = _restore_while_open(cfg, log, lambda _events: prev.abort_transaction(30))
     assert restored["models"] == 0, restored
     assert not [e for e in _events(log) if e.get("event") == "state_refused"]  # aborted records never count
