@@ -5,8 +5,12 @@ window, the one that has recently been the most accurate:
 
 0. *level*: an exponentially weighted mean of the feature (half-life ``half_life`` windows);
 1. *hour of day*: the mean of the feature at this hour of the day (24 slots), plus an
-   exponentially weighted offset that follows slow drift of the whole profile;
-2. *hour of week*: the same with 168 slots (hour and weekday, Monday first).
+   exponentially weighted offset that follows slow drift of the whole profile; read either as
+   steps (the slot's mean all hour) or as a line between the middles of neighbouring slots
+   (:func:`blend_of`), whichever has been the more accurate for this feature (a smooth daily
+   curve is better drawn as a line, a service that switches at fixed hours as steps);
+2. *hour of week*: the same with 168 slots (hour and weekday, Monday first), read in the shape
+   chosen for the day profile.
 
 Each prediction's accuracy is an EWMA of its absolute error (half-life ``8 * half_life``): the
 robust scale of a feature is ``1.2533 *`` the chosen prediction's mean absolute error (for a
@@ -29,7 +33,10 @@ scale so they can be compared and squashed alike:
   with repeat rate ``q`` (an EWMA of "same as the previous window", with half a repeat of prior
   evidence) and the rate ``q2`` at which past runs went on (learnt when a run ends), the chance of
   the run is ``q * q2 ** (r - 1)``, reported as the normal deviate of that tail probability (0
-  when nothing repeats). A feature that often repeats (a counter that sits at 0) gives none;
+  when nothing repeats). Both rates are those learnt before the run began: the run's own
+  repeats join the repeat rate only when it ends, so a frozen exporter does not make its own
+  run look routine while it is being judged. A feature that often repeats (a counter that sits
+  at 0, counting the run in progress) gives none;
 * ``drift`` -- an EWMA of the clipped ``z`` over its own learned scale: a deviation too small to
   alert in any one window that persists (a slow leak, a level that creeps) grows it.
 
@@ -74,7 +81,7 @@ from models.base import split_features
 from models.baseline import Z_LIMIT, alpha_from_half_life
 from models.errors import CorruptState, SettingsError
 
-__all__ = ["Evidence", "SeasonalBaseline", "slots_of", "tail_deviate"]
+__all__ = ["Evidence", "SeasonalBaseline", "blend_of", "slots_of", "tail_deviate"]
 
 DAY_S = 86400.0
 WEEK_S = 7 * DAY_S
@@ -139,8 +146,22 @@ NEW_IN_FORMAT_3 = ("ez", "ez2", "ezw", "yr", "yw", "yn", "ye", "rr", "rrw")
 #: last value and 0 (the feature is where it was).
 NEW_IN_FORMAT_4 = ("held",)
 NEW_INTS_IN_FORMAT_4 = ("away",)
+#: Statistics added by model state format 5: the repeats of the run in progress, kept out of the
+#: repeat rate until the run ends (see ``stuck``), and the error of the blended day profile (see
+#: :func:`blend_of`). A format-4 state reads the first as 0 (the repeats of a run in progress are
+#: already in the rate, as they were counted then) and the second as the stepped profile's error
+#: (so the stepped profile stays in use until the blended one has done better).
+NEW_IN_FORMAT_5 = ("rpend", "err1b")
 #: Prior weight, in windows, of "a run continues as often as a repeat starts" (see ``stuck``).
 STUCK_PRIOR_RUNS = 2.0
+#: Prior repeats in the rate that judges a run (with one window of prior weight): a whole repeat
+#: rather than the half elsewhere, because the run is judged against the rate from before it
+#: began, and a rate estimated from a day of windows with no repeat yet must not make three equal
+#: windows of a small integer metric look like a one-in-a-million event. Measured on the demo
+#: (seeds 7 / 1 / 2, with the run kept out of the rate): half a repeat added a false onset on
+#: seed 7 (a queue depth equal three windows running on the first day); one repeat did not, and
+#: kept the earlier stuck-metric catches; two lost a catch within 3 windows on seed 1.
+STUCK_PRIOR_REPEATS = 1.0
 #: A feature that repeats its value in fewer than this share of windows is continuous for
 #: practical purposes: its run's own chance (see ``stuck``) is the tail probability. Between
 #: this and STUCK_MAX_RATE (values that sometimes repeat, such as rounded or small integer
@@ -181,6 +202,27 @@ def slots_of(at: float) -> tuple[int, int]:
     return hour, 24 * weekday + hour
 
 
+def blend_of(at: float) -> tuple[int, int, int, int, float]:
+    """Hour of day and hour of week of ``at``, their neighbouring slots and the neighbour's weight.
+
+    A slot's mean stands for the middle of its hour; between two middles the profile's prediction
+    is the straight line between them, so a cycle that rises through the hour is not predicted as
+    a staircase. Returns ``(hour, how, next_hour, next_how, w)``: the prediction is
+    ``(1 - w) * slot[hour] + w * slot[next]``, ``next`` the previous slot in the first half of the
+    hour and the following one in the second.
+
+    >>> blend_of(1772409600.0 + 15 * 60)    # Monday 00:15: a quarter of the way from Sunday 23:30
+    (0, 0, 23, 167, 0.25)
+    >>> blend_of(1772409600.0 + 30 * 60)[4], blend_of(1772409600.0 + 45 * 60)[:4]
+    (0.0, (0, 0, 1, 1))
+    """
+    hour, how = slots_of(at)
+    c = (at % _HOUR_S) / _HOUR_S - 0.5
+    if c < 0.0:
+        return hour, how, (hour - 1) % 24, (how - 1) % 168, -c
+    return hour, how, (hour + 1) % 24, (how + 1) % 168, c
+
+
 def tail_deviate(p: float) -> float:
     """Normal deviate whose upper tail probability is ``p`` (0 for ``p >= 0.5``).
 
@@ -219,6 +261,14 @@ _ZERO_DAY, _ZERO_DAY_N = array("d", bytes(8 * 24)), array("H", bytes(2 * 24))
 _ZERO_WEEK, _ZERO_WEEK_N = array("d", bytes(8 * 168)), array("H", bytes(2 * 168))
 
 
+def _blend(row: array, row_n: array, slot: int, other: int, w: float) -> float:
+    """A profile's value at ``slot`` moved ``w`` of the way to ``other`` (if that slot was seen)."""
+    v = row[slot]
+    if w and row_n[other]:
+        v += w * (row[other] - v)
+    return v
+
+
 def _stack(rows: list[array], dtype: Any, width: int) -> np.ndarray:
     """The profile rows as one writable ``(len(rows), width)`` array (one copy of their bytes)."""
     return np.frombuffer(bytearray().join(rows), dtype=dtype).reshape(len(rows), width)
@@ -247,7 +297,7 @@ class SeasonalBaseline:
 
     _FLOATS = ("level", "lw", "off_day", "off_week", "err0", "err1", "err2", "ew", "ew2",
                "dscale", "dw", "rep", "repw", "last", "xr", "xw", "xn", "xe") + NEW_IN_FORMAT_3 \
-        + NEW_IN_FORMAT_4
+        + NEW_IN_FORMAT_4 + NEW_IN_FORMAT_5
     _INTS = ("count", "run") + NEW_INTS_IN_FORMAT_4
 
     __slots__ = ("half_life", "alpha", "absolute_floor", "relative_floor", "_names", "_index",
@@ -333,7 +383,9 @@ class SeasonalBaseline:
         f, ints = self._f, self._i
         level, off_d, off_w = f["level"], f["off_day"], f["off_week"]
         err0, err1, err2, ew, ew2 = f["err0"], f["err1"], f["err2"], f["ew"], f["ew2"]
+        err1b = f["err1b"]
         dscale, last, rep, repw = f["dscale"], f["last"], f["rep"], f["repw"]
+        rpend = f["rpend"]
         ez, ez2, ezw = f["ez"], f["ez2"], f["ezw"]
         rr, rrw = f["rr"], f["rrw"]
         xr, xw, xn, xe = f["xr"], f["xw"], f["xn"], f["xe"]
@@ -341,7 +393,7 @@ class SeasonalBaseline:
         count, run = ints["count"], ints["run"]
         held, away_n = f["held"], ints["away"]
         use_day, use_week = self._cycles(at)
-        hour, how = slots_of(at) if at is not None else (0, 0)
+        hour, how, nh, nw, bw = blend_of(at) if at is not None else (0, 0, 0, 0, 0.0)
         day, day_n, week, week_n = self._day, self._day_n, self._week, self._week_n
         floor_abs, floor_rel = self.absolute_floor, self.relative_floor
         names = self._names
@@ -352,11 +404,30 @@ class SeasonalBaseline:
                 append(Evidence(nan, 0.0, 0.0, 0.0, False))
                 continue
             p0 = level[i]
-            p1 = day[i][hour] + off_d[i] if use_day and day_n[i][hour] else p0
-            p2 = week[i][how] + off_w[i] if use_week and week_n[i][how] else p1
+            # The profiles' predictions: stepped, or blended with the neighbouring slot (see
+            # blend_of) where the blended day profile has been the more accurate.
+            e1 = err1[i]
+            smooth = err1b[i] < e1
+            if smooth:
+                e1 = err1b[i]
+            if use_day and day_n[i][hour]:
+                row = day[i]
+                p1 = row[hour]
+                if smooth and day_n[i][nh]:
+                    p1 += bw * (row[nh] - p1)
+                p1 += off_d[i]
+            else:
+                p1 = p0
+            if use_week and week_n[i][how]:
+                row = week[i]
+                p2 = row[how]
+                if smooth and week_n[i][nw]:
+                    p2 += bw * (row[nw] - p2)
+                p2 += off_w[i]
+            else:
+                p2 = p1
             e = err0[i]
             p = p0
-            e1 = err1[i]
             if e1 < PREFER_SIMPLER * e:
                 e, p = e1, p1
             e2 = err2[i]
@@ -396,9 +467,12 @@ class SeasonalBaseline:
             p_stuck = 1.0
             q = 1.0
             if x == x_last:
-                # Repeat rate with half a repeat of prior evidence; the run includes this window.
-                q = (rep[i] + 0.5) / (repw[i] + 1.0)
-                if q < STUCK_MAX_RATE:
+                # Repeat rate with half a repeat of prior evidence. Whether the feature can be
+                # stuck at all counts the run in progress (a value that has sat still for most
+                # of the recent windows is one that sits still); the run's chance is judged by
+                # the rate from before the run (its own repeats would make it look routine).
+                q = (rep[i] + STUCK_PRIOR_REPEATS) / (repw[i] + 1.0)
+                if (rep[i] + rpend[i] + 0.5) / (repw[i] + 1.0) < STUCK_MAX_RATE:
                     # Repeats as a two-state chain: a repeat starts a run at rate q, and a run
                     # continues at the rate q2 learned from the windows that followed a repeat
                     # (prior: independence, q2 = q, worth STUCK_PRIOR_RUNS windows). A metric
@@ -442,7 +516,7 @@ class SeasonalBaseline:
                 p_ev = p_stuck
             is_held = False
             if not is_count:
-                q_hold = (rep[i] + 0.5) / (repw[i] + 1.0)
+                q_hold = (rep[i] + rpend[i] + 0.5) / (repw[i] + 1.0)
                 away = 0 if x == held[i] or x == x_last else away_n[i] + 1
                 if q_hold >= HOLD_RATE and away <= 1:
                     # A feature that holds its value (a restart counter at 0): its deviation
@@ -502,17 +576,25 @@ class SeasonalBaseline:
         for i in range(len(ez)):
             ez[i] = 0.0
 
-    def _predictions(self, i: int, use_day: bool, use_week: bool, hour: int, how: int
+    def _predictions(self, i: int, use_day: bool, use_week: bool, blend: tuple[int, int, int, int, float]
                      ) -> tuple[float, float, float]:
+        """The level's and the two profiles' predictions of feature ``i`` (``blend`` from
+        :func:`blend_of`)."""
         f = self._f
-        p0 = f["level"][i]
-        p1 = self._day[i][hour] + f["off_day"][i] if use_day and self._day_n[i][hour] else p0
-        p2 = self._week[i][how] + f["off_week"][i] if use_week and self._week_n[i][how] else p1
+        hour, how, nh, nw, w = blend
+        if not f["err1b"][i] < f["err1"][i]:
+            w = 0.0  # the stepped profiles are the more accurate
+        p0 = p1 = f["level"][i]
+        if use_day and self._day_n[i][hour]:
+            p1 = _blend(self._day[i], self._day_n[i], hour, nh, w) + f["off_day"][i]
+        p2 = p1
+        if use_week and self._week_n[i][how]:
+            p2 = _blend(self._week[i], self._week_n[i], how, nw, w) + f["off_week"][i]
         return p0, p1, p2
 
     def _best(self, i: int) -> int:
         f = self._f
-        e0, e1, e2 = f["err0"][i], f["err1"][i], f["err2"][i]
+        e0, e1, e2 = f["err0"][i], min(f["err1"][i], f["err1b"][i]), f["err2"][i]
         best, e = 0, e0
         if e1 < PREFER_SIMPLER * e:
             best, e = 1, e1
@@ -524,13 +606,13 @@ class SeasonalBaseline:
                   ) -> list[tuple[float, float, float]]:
         """``x - prediction`` for each of the three predictions (zeros for an unlearned feature)."""
         use_day, use_week = self._cycles(at)
-        hour, how = slots_of(at) if at is not None else (0, 0)
+        blend = blend_of(at) if at is not None else (0, 0, 0, 0, 0.0)
         out = []
         for i, x in zip(idx, values):
             if self._i["count"][i] == 0:
                 out.append((0.0, 0.0, 0.0))
                 continue
-            p0, p1, p2 = self._predictions(i, use_day, use_week, hour, how)
+            p0, p1, p2 = self._predictions(i, use_day, use_week, blend)
             out.append((x - p0, x - p1, x - p2))
         return out
 
@@ -541,7 +623,7 @@ class SeasonalBaseline:
         straight away, while its scales and profile shapes are kept.
         """
         f = self._f
-        run, rep, repw = self._i["run"], f["rep"], f["repw"]
+        run, rep, repw, rpend = self._i["run"], f["rep"], f["repw"], f["rpend"]
         for i, (d0, d1, d2) in zip(idx, offsets):
             f["level"][i] += d0
             f["off_day"][i] += d1
@@ -550,7 +632,9 @@ class SeasonalBaseline:
                 # A value still repeating is part of the new normal: the feature now counts as
                 # one that repeats (twice the stuck limit), so its run does not reopen the
                 # alert; the rate decays back as it moves again.
-                rep[i] = max(rep[i], 2.0 * STUCK_MAX_RATE * (repw[i] + 1.0))
+                # The run's own repeats count from now on: they are the new normal.
+                rep[i] = max(rep[i] + rpend[i], 2.0 * STUCK_MAX_RATE * (repw[i] + 1.0))
+                rpend[i] = 0.0
 
     # ------------------------------------------------------------------ learning
     def update(self, idx: Sequence[int], values: Sequence[float], at: float | None, *,
@@ -566,11 +650,16 @@ class SeasonalBaseline:
         last, run = f["last"], ints["run"]
         held, away = f["held"], ints["away"]
         if not learn:
+            rep, rpend = f["rep"], f["rpend"]
             for i, x in zip(idx, values):
                 if ints["count"][i]:
                     run[i] = run[i] + 1 if x == last[i] else 0
                     if x == last[i]:
                         held[i] = x
+                    elif rpend[i]:
+                        # The run ended while learning is frozen: its learnt repeats join the rate.
+                        rep[i] += rpend[i]
+                        rpend[i] = 0.0
                     away[i] = 0 if x == held[i] else away[i] + 1
                 else:
                     held[i] = x
@@ -591,7 +680,7 @@ class SeasonalBaseline:
             if math.isnan(self.first_at):
                 self.first_at = at
         use_day, use_week = self._cycles(at)
-        hour, how = slots_of(at) if at is not None else (0, 0)
+        hour, how, nh, nw, bw = blend_of(at) if at is not None else (0, 0, 0, 0, 0.0)
         a = self.alpha
         keep = 1.0 - a
         ks = 0.5 ** (1.0 / (SCALE_FACTOR * self.half_life))
@@ -606,10 +695,10 @@ class SeasonalBaseline:
         else:
             a_day = a_week = 0.0
         level, lw, off_d, off_w = f["level"], f["lw"], f["off_day"], f["off_week"]
-        err0, err1, err2 = f["err0"], f["err1"], f["err2"]
+        err0, err1, err2, err1b = f["err0"], f["err1"], f["err2"], f["err1b"]
         ks2 = ks * ks
         ew, ew2, dscale, dw, rep, repw = f["ew"], f["ew2"], f["dscale"], f["dw"], f["rep"], f["repw"]
-        rr, rrw = f["rr"], f["rrw"]
+        rr, rrw, rpend = f["rr"], f["rrw"], f["rpend"]
         count = ints["count"]
         day, day_n, week, week_n = self._day, self._day_n, self._week, self._week_n
         for i, x in zip(idx, values):
@@ -623,12 +712,32 @@ class SeasonalBaseline:
                 continue
             # The predictions of :meth:`_predictions`, written out (the same operations).
             p0 = level[i]
-            p1 = day[i][hour] + off_d[i] if use_day and day_n[i][hour] else p0
-            p2 = week[i][how] + off_w[i] if use_week and week_n[i][how] else p1
+            # Both day predictions (stepped ``s1``, blended ``b1``) are kept scored; the one in
+            # use and the week's shape follow whichever has been the more accurate.
+            smooth = err1b[i] < err1[i]
+            if use_day and day_n[i][hour]:
+                row = day[i]
+                s1 = b1 = row[hour]
+                if day_n[i][nh]:
+                    b1 = s1 + bw * (row[nh] - s1)
+                s1 += off_d[i]
+                b1 += off_d[i]
+            else:
+                s1 = b1 = p0
+            p1 = b1 if smooth else s1
+            if use_week and week_n[i][how]:
+                row = week[i]
+                p2 = row[how]
+                if smooth and week_n[i][nw]:
+                    p2 += bw * (row[nw] - p2)
+                p2 += off_w[i]
+            else:
+                p2 = p1
             # Errors: normalised weights (a running mean at first, as pandas' adjust=True).
             w = ks * ew[i] + 1.0
             err0[i] += (abs(x - p0) - err0[i]) / w
-            err1[i] += (abs(x - p1) - err1[i]) / w
+            err1[i] += (abs(x - s1) - err1[i]) / w
+            err1b[i] += (abs(x - b1) - err1b[i]) / w
             err2[i] += (abs(x - p2) - err2[i]) / w
             ew[i], ew2[i] = w, ks2 * ew2[i] + 1.0
             wd = ks * dw[i] + 1.0
@@ -636,8 +745,14 @@ class SeasonalBaseline:
             dscale[i] += (abs(x - x_last) - dscale[i]) / wd
             dw[i] = wd
             same = 1.0 if x == x_last else 0.0
-            rep[i] = kr * rep[i] + same
+            # A repeat waits in ``rpend`` until its run ends (see ``stuck``); ``rep + rpend`` is
+            # the repeat rate's EWMA counting every window.
+            rep[i] = kr * rep[i]
+            rpend[i] = kr * rpend[i] + same
             repw[i] = kr * repw[i] + 1.0
+            if not same:
+                rep[i] += rpend[i]
+                rpend[i] = 0.0
             if run[i] > 0 and not same:
                 # A run of L repeats has ended: L - 1 of the windows after a repeat repeated
                 # again, out of L. Learnt only once the run is over, so a run in progress (a
@@ -726,18 +841,22 @@ class SeasonalBaseline:
     def from_state(cls, state: Mapping[str, Any], *, upgrade: bool = False) -> SeasonalBaseline:
         """Rebuild from :meth:`to_state` output; malformed states raise ``CorruptState``.
 
-        ``upgrade`` reads a state written by model state format 2 or 3. Format 2 lacks
-        :data:`NEW_IN_FORMAT_3`: those start at zero, as for a fresh feature. Both lack
-        :data:`NEW_IN_FORMAT_4` and :data:`NEW_INTS_IN_FORMAT_4`: the held value starts as the
-        last value and the count of windows away from it at 0.
+        ``upgrade`` reads a state written by model state format 2, 3 or 4. Format 2 lacks
+        :data:`NEW_IN_FORMAT_3`: those start at zero, as for a fresh feature. Formats 2 and 3
+        lack :data:`NEW_IN_FORMAT_4` and :data:`NEW_INTS_IN_FORMAT_4`: the held value starts as
+        the last value and the count of windows away from it at 0. All three lack
+        :data:`NEW_IN_FORMAT_5`: no repeats wait (those of a run in progress are in the rate).
         """
         if upgrade and isinstance(state, Mapping) and isinstance(state.get("names"), list):
-            missing = {k: np.zeros(len(state["names"])) for k in NEW_IN_FORMAT_3 if k not in state}
+            missing = {k: np.zeros(len(state["names"])) for k in NEW_IN_FORMAT_3 + NEW_IN_FORMAT_5
+                       if k not in state}
             for k in NEW_INTS_IN_FORMAT_4:
                 if k not in state:
                     missing[k] = np.zeros(len(state["names"]), dtype=np.int64)
             if "held" not in state and isinstance(state.get("last"), np.ndarray):
                 missing["held"] = state["last"].copy()
+            if "err1b" not in state and isinstance(state.get("err1"), np.ndarray):
+                missing["err1b"] = state["err1"].copy()
             state = {**state, **missing}
         try:
             base = cls(state["half_life"], absolute_floor=state["absolute_floor"],

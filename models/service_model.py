@@ -108,10 +108,12 @@ _TREE_PARTS = ("level", "change")
 
 #: Model state format. 3 added the baseline's drift statistics and tail clusters
 #: (:data:`models.seasonal.NEW_IN_FORMAT_3`); 4 added each feature's held value and its count
-#: of windows away from it (:data:`models.seasonal.NEW_IN_FORMAT_4`). Formats 2 and 3 still
-#: load, with the missing statistics at the values of a feature that is where it was.
-_STATE_FORMAT = 4
-_READABLE_FORMATS = (2, 3, 4)
+#: of windows away from it (:data:`models.seasonal.NEW_IN_FORMAT_4`); 5 the repeats of a run in
+#: progress, kept out of the repeat rate until the run ends (:data:`models.seasonal.NEW_IN_FORMAT_5`).
+#: Formats 2 to 4 still load, with the missing statistics at the values of a feature that is
+#: where it was.
+_STATE_FORMAT = 5
+_READABLE_FORMATS = (2, 3, 4, 5)
 
 
 @dataclass(slots=True)

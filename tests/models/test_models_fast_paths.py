@@ -14,7 +14,7 @@ import numpy as np
 import pytest
 
 from models.hst import HalfSpaceTrees
-from models.seasonal import SeasonalBaseline, slots_of
+from models.seasonal import SeasonalBaseline, blend_of
 
 T0 = 1772409600.0  # 2026-03-02T00:00:00Z, a Monday
 STEP = 300.0
@@ -46,12 +46,11 @@ def test_compare_matches_the_prediction_and_tail_helpers(seed: int) -> None:
         idx = base.locate(names, add=True)
         evidence = base.compare(idx, values, at)
         use_day, use_week = base._cycles(at)
-        hour, how = slots_of(at)
         for i, x, ev in zip(idx, values, evidence):
             if base._i["count"][i] == 0:
                 assert math.isnan(ev.expected) and not ev.scorable
                 continue
-            preds = base._predictions(i, use_day, use_week, hour, how)
+            preds = base._predictions(i, use_day, use_week, blend_of(at))
             assert ev.expected == preds[base._best(i)]
             if ev.scorable and ev.stuck == 0.0 and not ev.held:
                 want = min(base._tail_p(i, abs(ev.z), "x"), 2.0 * base._tail_p(i, abs(ev.drift), "y"))
