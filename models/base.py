@@ -49,17 +49,21 @@ def split_features(x: Mapping[str, float]) -> tuple[list[str], list[float]]:
         raise FeatureError(f"features must be a mapping of name to number, got {type(x).__name__}")
     names: list[str] = []
     values: list[float] = []
+    isfinite = math.isfinite
     for name, value in x.items():
         if not isinstance(name, str):
             raise FeatureError(f"feature names must be strings, got {name!r}")
-        # bool is an int subclass, but a flag is not a measurement.
-        if isinstance(value, bool) or isinstance(value, (str, bytes)):
-            raise FeatureError(f"feature {name!r} must be a number, got {value!r}")
-        try:
-            v = float(value)
-        except (TypeError, ValueError) as exc:
-            raise FeatureError(f"feature {name!r} must be a number, got {value!r}") from exc
-        if math.isfinite(v):
+        if type(value) is float:
+            v = value  # the usual case (window features are floats): ``float(value)`` is ``value``
+        else:
+            # bool is an int subclass, but a flag is not a measurement.
+            if isinstance(value, bool) or isinstance(value, (str, bytes)):
+                raise FeatureError(f"feature {name!r} must be a number, got {value!r}")
+            try:
+                v = float(value)
+            except (TypeError, ValueError) as exc:
+                raise FeatureError(f"feature {name!r} must be a number, got {value!r}") from exc
+        if isfinite(v):
             names.append(name)
             values.append(v)
     return names, values

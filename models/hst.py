@@ -52,7 +52,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Mapping
-from typing import Any
+from typing import Any, NamedTuple
 
 import numpy as np
 
@@ -101,6 +101,51 @@ def _state_array(state: Mapping[str, Any], key: str, shape: tuple[int, int],
     if not isinstance(arr, np.ndarray) or arr.shape != shape or arr.dtype != dtype:
         raise CorruptState(f"{key!r} must be a {dtype} array of shape {shape}")
     return arr.copy()
+
+
+class _PaddedOrder(NamedTuple):
+    """Index arrays of :meth:`HalfSpaceTrees._draw_padded` for one (trees, height, features)."""
+
+    draws: np.ndarray  # position order of the draws: per level the two blocks, each (trees, n) by position
+    heap: np.ndarray  # column of each heap-order internal node in the by-position columns
+    levels: tuple[tuple[np.ndarray, np.ndarray], ...]  # per level: index bases (4, trees, n), multipliers
+
+
+# A fleet builds thousands of trees of one shape, and these depend on nothing else. Read-only arrays.
+_PADDED_ORDERS: dict[tuple[int, int, int], _PaddedOrder] = {}
+
+
+def _padded_order(trees: int, height: int, n_f: int) -> _PaddedOrder:
+    key = (trees, height, n_f)
+    found = _PADDED_ORDERS.get(key)
+    if found is not None:
+        return found
+    draws, heap, levels = [], [], []
+    heap_of = np.zeros(1, dtype=np.intp)  # heap index within the level of the node at each position
+    pos = 0
+    for level in range(height):
+        n = 1 << level
+        size = trees * n
+        by_position = (np.arange(trees, dtype=np.intp)[:, None] * n + heap_of[None, :]).ravel()
+        draws += [pos + by_position, pos + size + by_position]
+        heap.append((n - 1) + np.argsort(heap_of))
+        node = np.arange(size, dtype=np.intp).reshape(trees, n)  # tree * n + position
+        child = (node // n) * (2 * n) + node % n  # the left child's tree * 2n + position
+        # Flat position of feature f: base + f * multiplier; [0] low and [1] high of the node in
+        # this level's (2, features, trees, n) array, [2] the left child's high and [3] the right
+        # child's low in the children's (2, features, trees, 2n) array.
+        bases = np.stack((node, n_f * size + node, n_f * 2 * size + child, child + n))
+        multipliers = np.array([size, size, 2 * size, 2 * size], dtype=np.intp)[:, None, None]
+        levels.append((bases, multipliers))
+        pos += 2 * size
+        heap_of = np.concatenate((2 * heap_of, 2 * heap_of + 1))
+    found = _PaddedOrder(np.concatenate(draws), np.concatenate(heap), tuple(levels))
+    for arr in (found.draws, found.heap, *(a for pair in levels for a in pair)):
+        arr.setflags(write=False)
+    if len(_PADDED_ORDERS) >= 64:  # a handful of shapes in practice; bounded all the same
+        _PADDED_ORDERS.clear()
+    _PADDED_ORDERS[key] = found
+    return found
 
 
 class HalfSpaceTrees:
@@ -198,38 +243,106 @@ class HalfSpaceTrees:
         self._index = {n: i for i, n in enumerate(names)}
         self._low = np.array([self.limits.get(n, (0.0, 1.0))[0] for n in names])
         self._high = np.array([self.limits.get(n, (0.0, 1.0))[1] for n in names])
-        n_f, trees = len(names), self.n_trees
+        n_f = len(names)
         rng = np.random.default_rng(self.seed)
-        # One level of every tree at a time (heap order is breadth-first): ``low``/``high`` hold
-        # the range of every node of the current level, shape (trees, nodes in level, features).
         if self.split == "padded":
-            low = np.broadcast_to(self._low, (trees, 1, n_f)).copy()
-            high = np.broadcast_to(self._high, (trees, 1, n_f)).copy()
+            feature, threshold = self._draw_padded(rng, n_f)
         else:
-            s = rng.uniform(self._low, self._high, size=(trees, 1, n_f))
-            r = 2.0 * np.maximum(s - self._low, self._high - s)
-            low, high = s - r, s + r
+            feature, threshold = self._draw_work_range(rng, n_f)
+        self._feature = feature.astype(_feature_dtype(n_f))
+        self._threshold = threshold.astype(np.float32)
+        mass = _mass_dtype(self.window_size)
+        self._l_mass = np.zeros((self.n_trees, self.n_nodes), dtype=mass)
+        self._r_mass = np.zeros((self.n_trees, self.n_nodes), dtype=mass)
+
+    def _draw_padded(self, rng: np.random.Generator, n_f: int) -> tuple[np.ndarray, np.ndarray]:
+        """Split features (intp) and thresholds (float64), shape ``(n_trees, internal nodes)``, heap order.
+
+        One level of every tree at a time. The ranges of a level's nodes are one array of shape
+        ``(2, features, trees, nodes in level)`` (low, then high): features first, so the cumulative
+        width and the count below the drawn point run over whole rows instead of along short
+        rows, which numpy does slowly. Within a level the nodes are not in heap order but in the
+        order that lets the children be made by one ``concatenate`` (children of the node at
+        position ``k`` of ``n`` sit at ``k`` (left) and ``k + n`` (right)); the draws are permuted
+        into that order first, the results back into heap order at the end.
+
+        The numbers drawn, their order and every arithmetic operation are those of the plain
+        level-by-level form (each level drew the feature-picking block, then the split-placing
+        block, each of shape ``(trees, nodes in level)``): ``Generator.random`` fills float64 values
+        one 64-bit draw at a time, so one call for all levels yields the same values in the same
+        order; a cumulative sum is the same sequence of additions along either axis; and ``b - a``
+        of a gathered low ``a`` and high ``b`` is the subtraction that gave the width there. The
+        trees are bit-identical; tests/models/test_models_hst.py checks it against the plain form.
+        """
+        trees, height = self.n_trees, self.height
+        order = _padded_order(trees, height, n_f)
+        draws = rng.random(2 * trees * (2 ** height - 1))
+        # Where in its range each split falls (the middle 70 %); computed for every draw at once,
+        # the feature-picking blocks' values are simply not used.
+        draws = draws.take(order.draws)
+        place = _PADDING + (1.0 - 2.0 * _PADDING) * draws
+        lh = np.empty((2, n_f, trees, 1))
+        lh[0] = self._low[:, None, None]
+        lh[1] = self._high[:, None, None]
+        features_by_level, thresholds_by_level = [], []
+        pos = 0
+        last = n_f - 1
+        for level, (bases, multipliers) in enumerate(order.levels):
+            n = 1 << level
+            size = trees * n
+            cum = lh[1] - lh[0]  # the widths, summed in place below (shape: features, trees, n)
+            if size <= 96:
+                cum.cumsum(axis=0, out=cum)
+            else:
+                # The same additions in the same order, a whole row per call (numpy's cumulative
+                # sum along the first axis is slower than that on rows this long).
+                prev, *rows = cum
+                for row in rows:
+                    np.add(prev, row, out=row)
+                    prev = row
+            # Feature drawn with probability proportional to its width (inverse CDF).
+            u = draws[pos : pos + size].reshape(trees, n) * cum[last]
+            f = (cum <= u).sum(axis=0)
+            np.minimum(f, last, out=f)
+            at_index = f * multipliers + bases  # see _padded_order
+            ab = lh.take(at_index[:2])  # low and high of feature f at every node
+            a = ab[0]
+            at = a + (ab[1] - a) * place[pos + size : pos + 2 * size].reshape(trees, n)
+            pos += 2 * size
+            features_by_level.append(f)
+            thresholds_by_level.append(at)
+            if level == height - 1:
+                break  # the leaves' ranges are never used
+            # Children: the left one's high[f] and the right one's low[f] become the split;
+            # ``put`` repeats ``at`` over both blocks of indices.
+            lh = np.concatenate((lh, lh), axis=3)
+            lh.put(at_index[2:], at)
+        feature = np.concatenate(features_by_level, axis=1).take(order.heap, axis=1)
+        threshold = np.concatenate(thresholds_by_level, axis=1).take(order.heap, axis=1)
+        return feature, threshold
+
+    def _draw_work_range(self, rng: np.random.Generator, n_f: int) -> tuple[np.ndarray, np.ndarray]:
+        """Like :meth:`_draw_padded` for the paper's rule (feature uniform, split at the mid-point).
+
+        One level of every tree at a time: ``low``/``high`` hold the range of every node of the
+        current level, shape (trees, nodes in level, features). ``Generator.integers`` may serve small
+        ranges from halves of 64-bit draws buffered within one call, so merging its calls could shift
+        the stream: its draws stay one call per level.
+        """
+        trees = self.n_trees
+        s = rng.uniform(self._low, self._high, size=(trees, 1, n_f))
+        r = 2.0 * np.maximum(s - self._low, self._high - s)
+        low, high = s - r, s + r
         features_by_level, thresholds_by_level = [], []
         # Plain fancy indexing ``a[tree, node, f]`` reads and writes the same elements as
-        # ``take_along_axis``/``put_along_axis`` with less overhead; every drawn number and every
-        # arithmetic operation is as before, so the trees are bit-identical.
+        # ``take_along_axis``/``put_along_axis`` with less overhead.
         tree_at = np.arange(trees)[:, None]
         for level in range(self.height):
-            width = high - low
-            node_at = np.arange(width.shape[1])[None, :]
-            if self.split == "padded":
-                # Feature drawn with probability proportional to its width (inverse CDF).
-                cum = np.cumsum(width, axis=2)
-                u = rng.random(cum.shape[:2]) * cum[:, :, -1]
-                f = np.minimum((cum <= u[:, :, None]).sum(axis=2), n_f - 1)
-                a = low[tree_at, node_at, f]
-                w = width[tree_at, node_at, f]
-                at = a + w * (_PADDING + (1.0 - 2.0 * _PADDING) * rng.random(f.shape))
-            else:
-                f = rng.integers(n_f, size=width.shape[:2])
-                a = low[tree_at, node_at, f]
-                b = high[tree_at, node_at, f]
-                at = 0.5 * (a + b)
+            node_at = np.arange(low.shape[1])[None, :]
+            f = rng.integers(n_f, size=low.shape[:2])
+            a = low[tree_at, node_at, f]
+            b = high[tree_at, node_at, f]
+            at = 0.5 * (a + b)
             features_by_level.append(f)
             thresholds_by_level.append(at)
             if level == self.height - 1:
@@ -239,13 +352,7 @@ class HalfSpaceTrees:
             high = np.repeat(high, 2, axis=1)
             high[tree_at, 2 * node_at, f] = at
             low[tree_at, 2 * node_at + 1, f] = at
-        feature = np.concatenate(features_by_level, axis=1).astype(_feature_dtype(n_f))
-        threshold = np.concatenate(thresholds_by_level, axis=1)
-        self._feature = feature
-        self._threshold = threshold.astype(np.float32)
-        mass = _mass_dtype(self.window_size)
-        self._l_mass = np.zeros((self.n_trees, self.n_nodes), dtype=mass)
-        self._r_mass = np.zeros((self.n_trees, self.n_nodes), dtype=mass)
+        return np.concatenate(features_by_level, axis=1), np.concatenate(thresholds_by_level, axis=1)
 
     # ------------------------------------------------------------------ vector API
     def vectorize(self, x: Mapping[str, float]) -> np.ndarray:
@@ -264,8 +371,8 @@ class HalfSpaceTrees:
     def _path(self, v: np.ndarray) -> np.ndarray:
         """Flat node index (``tree * n_nodes + node``) at every depth, shape ``(n_trees, height + 1)``."""
         # One vectorised comparison at every internal node of every tree, then a plain-Python
-        # walk over the resulting bytes: for trees this small that beats ``height`` rounds of
-        # numpy gathers, which pay a fixed overhead per call.
+        # walk over the resulting bytes down to each tree's leaf: for trees this small that beats
+        # ``height`` rounds of numpy gathers, which pay a fixed overhead per call.
         if v.shape != self._low.shape:
             raise SettingsError(f"expected a vector of {self._low.size} tree features, got shape {v.shape}")
         # ``take`` gathers the same values as ``v[feature]`` with less per-call overhead, and the
@@ -273,21 +380,27 @@ class HalfSpaceTrees:
         # against float64 values (float32 -> float64 is exact), without a conversion per call.
         walk = self._walk
         if not walk or walk[0] is not self._feature or walk[1] is not self._threshold:
-            walk = self._walk = (self._feature, self._threshold, self._feature.astype(np.intp),
-                                 self._threshold.astype(np.float64))
+            height, n_internal, n_nodes = self.height, 2 ** self.height - 1, self.n_nodes
+            walk = self._walk = (
+                self._feature, self._threshold, self._feature.astype(np.intp),
+                self._threshold.astype(np.float64),
+                tuple(range(-1, self.n_trees * n_internal - 1, n_internal)),  # each tree's bytes, minus 1
+                range(height),
+                np.arange(height, -1, -1, dtype=np.intp),  # depth d is the leaf's number >> (height - d)
+                (np.arange(self.n_trees, dtype=np.intp) * n_nodes - 1)[:, None],
+            )
         go_right = (v.take(walk[2]) >= walk[3]).tobytes()
-        n_internal, n_nodes, height, n_trees = 2 ** self.height - 1, self.n_nodes, self.height, self.n_trees
-        out: list[int] = []
-        append = out.append
-        levels = range(height)
-        for base, offset in zip(range(0, n_trees * n_internal, n_internal),
-                                range(0, n_trees * n_nodes, n_nodes)):
-            node = 0
-            append(offset)
+        # Numbered from 1 in heap order (children of j: 2j, 2j + 1; node i of the 0-based heap is
+        # j = i + 1), a node's number is its path's bits: the leaf gives every node above it.
+        leaves = []
+        append = leaves.append
+        levels = walk[5]
+        for base in walk[4]:
+            j = 1
             for _ in levels:
-                node = 2 * node + 1 + go_right[base + node]
-                append(offset + node)
-        return np.array(out, dtype=np.intp).reshape(n_trees, height + 1)
+                j = 2 * j + go_right[base + j]
+            append(j)
+        return (np.array(leaves, dtype=np.intp)[:, None] >> walk[6]) + walk[7]
 
     def _score_path(self, path: np.ndarray) -> float:
         """Normalised score of paths of shape ``(..., n_trees, height + 1)``, summed per row."""

@@ -107,6 +107,9 @@ class Engine:
         settings_cache = self.registry.resolved  # the dict itself: a reload clears it in place
         settings_of = self.registry.settings
         add = src.add
+        # The heap list itself (SourceWindows keeps one list for its lifetime): the due check below is
+        # :meth:`SourceWindows.has_due` written out, once per message.
+        heap = src._heap
         owner = self.owner
         max_services = self.config.limits.max_services
         accepted = 0
@@ -116,7 +119,12 @@ class Engine:
             except Rejected as r:
                 self.reject(r.code, r.detail, raw, origin_of(i))
                 continue
-            o = owner.get(service)
+            # Subscripts in ``try`` rather than ``.get``: the lookups that miss (a new service, settings
+            # not resolved yet) are rare, and a plain subscript is the cheaper operation.
+            try:
+                o = owner[service]
+            except KeyError:
+                o = None
             if o is not src:
                 if o is None:
                     if len(owner) >= max_services:
@@ -131,14 +139,15 @@ class Engine:
                     # One service's state lives with one source; a second source would fork it.
                     self.reject("unaligned_key", f"service {service!r} already arrives on another partition", raw, origin_of(i))
                     continue
-            s = settings_cache.get(service)
-            if s is None:
+            try:
+                s = settings_cache[service]
+            except KeyError:
                 s = settings_of(service)
             if not add(service, ts, metrics, s.window, s.lateness):
                 self.reject("late", f"event time {ts!r} is behind the watermark of service {service!r}", raw, origin_of(i))
                 continue
             accepted += 1
-            if src.has_due():
+            if heap and heap[0][0] <= src.high_mark:
                 self.close(src.pop_closed())
         self.stats.accepted += accepted
         self.stats.services_tracked = len(owner)

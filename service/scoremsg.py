@@ -13,11 +13,7 @@ from service.timefmt import format_rfc3339
 __all__ = ["SCORE_SCHEMA_VERSION", "encode_score"]
 
 SCORE_SCHEMA_VERSION = 1
-
-
-def _round(x: float) -> float:
-    # Six significant decimals keep messages short and stable across platforms.
-    return round(float(x), 6)
+_dumps = orjson.dumps
 
 
 def encode_score(service: str, start: float, end: float, count: int, kind: str, threshold: float, assessment) -> bytes:
@@ -25,29 +21,31 @@ def encode_score(service: str, start: float, end: float, count: int, kind: str, 
 
     ``assessment`` is a :class:`models.Assessment`.
     """
+    # Numbers are rounded to six decimals (``round(float(x), 6)``), which keeps messages short and
+    # stable across platforms; written out at each use rather than called, once per number per window.
     contributors = [
         {
-            "feature": c.feature,
-            "metric": c.feature.rpartition(".")[0] or c.feature,
-            "observed": _round(c.observed),
-            "expected": _round(c.expected),
-            "deviation": _round(c.deviation),
+            "feature": (feature := c.feature),
+            "metric": feature.rpartition(".")[0] or feature,
+            "observed": round(float(c.observed), 6),
+            "expected": round(float(c.expected), 6),
+            "deviation": round(float(c.deviation), 6),
         }
         for c in assessment.contributors
     ]
-    return orjson.dumps(
+    return _dumps(
         {
             "schema_version": SCORE_SCHEMA_VERSION,
             "service": service,
             "window_start": format_rfc3339(start),
             "window_end": format_rfc3339(end),
-            "score": _round(assessment.score),
+            "score": round(float(assessment.score), 6),
             "anomalous": bool(assessment.anomalous),
             "threshold": threshold,
             "warming_up": bool(assessment.warming_up),
             "model": kind,
             "count": count,
-            "raw_score": _round(assessment.raw),
+            "raw_score": round(float(assessment.raw), 6),
             "contributors": contributors,
         }
     )

@@ -149,3 +149,19 @@ def test_feature_globs_select_metrics(glob, expected):
     w.count = 1
     w.values = {"lat_p50": [5.0], "lat_p95": [9.0], "errors": [1.0]}
     assert window_features(w, (FeatureSpec(glob, "max"),)) == expected
+
+
+def test_values_keep_arrival_order_when_metrics_come_and_go_within_a_window():
+    # The reference: every value appended to its metric's list, a new metric's list made where it first
+    # appears (so the window's metrics are in first-arrival order).
+    msgs = [{"a": 1.0, "b": 2.0}, {"a": 3.0, "c": 4.0, "b": 5.0}, {"d": 6.0}, {"b": 7.0, "a": 8.0},
+            {"c": 9.0, "e": 10.0, "a": 11.0}, {"e": 12.0, "f": 13.0}, {"a": 14.0, "b": 15.0, "c": 16.0}]
+    sw = SourceWindows()
+    want: dict[str, list] = {}
+    for i, m in enumerate(msgs):
+        assert sw.add("api", float(i), m, 60.0, 0.0)
+        for name, value in m.items():
+            want.setdefault(name, []).append(value)
+    (window,) = sw.open["api"].values()
+    assert window.count == len(msgs)
+    assert list(window.values.items()) == list(want.items())

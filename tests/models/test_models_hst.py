@@ -227,3 +227,45 @@ def test_bad_parameters_are_refused() -> None:
                    {"split": "median"}, {"limits": {"a": (1.0, 1.0)}}):
         with pytest.raises(SettingsError):
             HalfSpaceTrees(**kwargs)
+
+
+def _plain_padded_build(hst: HalfSpaceTrees, names: list[str]) -> tuple[np.ndarray, np.ndarray]:
+    """The padded rule level by level, one draw call per block, (trees, nodes, features) arrays: the
+    form the vectorised build replaced (models/hst.py before it), kept here as its reference."""
+    low0 = np.array([hst.limits.get(n, (0.0, 1.0))[0] for n in names])
+    high0 = np.array([hst.limits.get(n, (0.0, 1.0))[1] for n in names])
+    trees, n_f = hst.n_trees, len(names)
+    rng = np.random.default_rng(hst.seed)
+    low = np.broadcast_to(low0, (trees, 1, n_f)).copy()
+    high = np.broadcast_to(high0, (trees, 1, n_f)).copy()
+    feats, cuts = [], []
+    tree_at = np.arange(trees)[:, None]
+    for level in range(hst.height):
+        width = high - low
+        node_at = np.arange(width.shape[1])[None, :]
+        cum = np.cumsum(width, axis=2)
+        u = rng.random(cum.shape[:2]) * cum[:, :, -1]
+        f = np.minimum((cum <= u[:, :, None]).sum(axis=2), n_f - 1)
+        at = low[tree_at, node_at, f] + width[tree_at, node_at, f] * (0.15 + (1.0 - 2.0 * 0.15) * rng.random(f.shape))
+        feats.append(f)
+        cuts.append(at)
+        low = np.repeat(low, 2, axis=1)
+        high = np.repeat(high, 2, axis=1)
+        high[tree_at, 2 * node_at, f] = at
+        low[tree_at, 2 * node_at + 1, f] = at
+    return np.concatenate(feats, axis=1), np.concatenate(cuts, axis=1).astype(np.float32)
+
+
+def test_vectorised_padded_build_draws_the_same_trees_as_the_plain_form() -> None:
+    # Bit-identical trees from the same seed: saved models and replays must not change with the build.
+    rng = np.random.default_rng(11)
+    shapes = [(10, 8, 12), (1, 1, 1), (3, 9, 2), (7, 4, 40)] + [
+        (int(rng.integers(1, 12)), int(rng.integers(1, 10)), int(rng.integers(1, 30))) for _ in range(40)]
+    for trees, height, n_f in shapes:
+        names = [f"f{i:02d}" for i in range(n_f)]
+        limits = {n: (float(-100 * rng.random()), float(1e3 * rng.random() + 1e-6)) for n in names if rng.random() < 0.5}
+        hst = HalfSpaceTrees(trees, height, 36, limits=limits, seed=int(rng.integers(0, 2**32)))
+        hst.build(names)
+        feature, threshold = _plain_padded_build(hst, names)
+        assert np.array_equal(hst._feature, feature), (trees, height, n_f)
+        assert hst._threshold.tobytes() == threshold.tobytes(), (trees, height, n_f)
