@@ -266,3 +266,27 @@ def test_a_format_4_state_loads_with_nothing_waiting_and_the_stepped_profile_in_
     assert restored.to_state()["format"] == 5
     a = restored.assess({"cpu.mean": 0.31, "count": 5.0}, at=T0 + STEP * 400)
     assert 0.0 <= a.score <= 1.0
+
+
+def test_the_blended_profile_is_a_continuous_line_through_every_slot_middle() -> None:
+    # blend_of's reading of a profile: equal to a slot's mean at the middle of its hour, linear in
+    # between, with no jump at an hour boundary, a day boundary or the week's wrap (Sunday 23:59 to
+    # Monday 00:00 joins slots 167 and 0 of the week profile).
+    from models.seasonal import blend_of
+
+    rng = np.random.default_rng(14)
+    day, week = rng.normal(size=24), rng.normal(size=168)
+
+    def read(at: float) -> tuple[float, float]:
+        hour, how, nh, nw, w = blend_of(at)
+        assert 0.0 <= w <= 0.5
+        return (1 - w) * day[hour] + w * day[nh], (1 - w) * week[how] + w * week[nw]
+
+    for k in range(168):
+        middle = T0 + 3600.0 * k + 1800.0
+        assert read(middle) == (day[k % 24], week[k])
+        boundary = T0 + 3600.0 * (k + 1)
+        before, after = read(boundary - 1e-3), read(boundary)
+        assert abs(before[0] - after[0]) < 1e-5 and abs(before[1] - after[1]) < 1e-5
+    quarter = read(T0 + 7 * 86400 - 900.0)  # Sunday 23:45: a quarter of the way to Monday 00:30
+    assert np.isclose(quarter[1], 0.75 * week[167] + 0.25 * week[0])
