@@ -140,12 +140,13 @@ def _storable(value: np.ndarray) -> tuple[np.ndarray, str]:
     return np.ascontiguousarray(little), little.dtype.str
 
 
-def _scan(value: Any, path: tuple[str | int, ...], found: dict[int, list]) -> None:
+def _scan(value: Any, path: tuple[str | int, ...], found: dict[int, tuple[list, list]]) -> None:
     """Check that ``value`` (a dict or list) holds only storable values; list its arrays.
 
-    Each array is appended to ``found[itemsize]`` as ``(path, array, dtype string)``. Exact types
-    are tested first, arrays first of all: states are made of plain dicts, lists, strings, numbers
-    and arrays, and this walk is on the commit path.
+    Each array goes to ``found[itemsize]``, a pair of lists: its table entry ``(path, dtype string,
+    shape)`` to the first (orjson writes the tuples as the table's JSON arrays), the array itself to
+    the second. Exact types are tested first, arrays first of all: states are made of plain dicts,
+    lists, strings, numbers and arrays, and this walk is on the commit path.
     """
     if type(value) is dict:
         items = value.items()
@@ -154,13 +155,17 @@ def _scan(value: Any, path: tuple[str | int, ...], found: dict[int, list]) -> No
                 raise ModelError(f"state keys must be strings, got {k!r}")
     else:
         items = enumerate(value)
+    ndarray = np.ndarray
+    stored_as = _STORED_AS
     for k, v in items:
         t = type(v)
-        if t is np.ndarray:
-            stored = _STORED_AS.get(v.dtype)
+        if t is ndarray:
+            stored = stored_as.get(v.dtype)
             if stored is None or not v.flags.c_contiguous:
                 v, stored = _storable(v)
-            found[v.itemsize].append(((*path, k), v, stored))
+            entries, arrays = found[v.itemsize]
+            entries.append(((*path, k), stored, v.shape))
+            arrays.append(v)
         elif t is float:
             if not math.isfinite(v):
                 # JSON has no inf/NaN (orjson would write null and the round trip would change).
@@ -173,11 +178,13 @@ def _scan(value: Any, path: tuple[str | int, ...], found: dict[int, list]) -> No
             _scan_other(v, (*path, k), found)
 
 
-def _scan_other(v: Any, path: tuple[str | int, ...], found: dict[int, list]) -> None:
+def _scan_other(v: Any, path: tuple[str | int, ...], found: dict[int, tuple[list, list]]) -> None:
     """:func:`_scan` of a value of a subclass (or an unsupported type)."""
     if isinstance(v, np.ndarray):
         arr, stored = _storable(np.asarray(v))
-        found[arr.itemsize].append((path, arr, stored))
+        entries, arrays = found[arr.itemsize]
+        entries.append((path, stored, arr.shape))
+        arrays.append(arr)
     elif isinstance(v, dict):
         for key in v:
             if not isinstance(key, str):
@@ -232,22 +239,26 @@ def encode_state(service: str, model: ServiceModel, *, key: bytes | None = None)
         raise ModelError("a model state must be a dict")
     # Arrays by item size, widest first in the payload: every array then starts at a multiple of
     # its item size (the order within a size is the state's, so equal states give equal bytes).
-    found: dict[int, list[tuple[tuple[str | int, ...], np.ndarray, str]]] = {8: [], 4: [], 2: [], 1: []}
+    found: dict[int, tuple[list, list]] = {8: ([], []), 4: ([], []), 2: ([], []), 1: ([], [])}
     _scan(state, (), found)
     try:
         state_json = orjson.dumps(state, default=_json_default)
     except TypeError as exc:  # orjson.JSONEncodeError: e.g. a state nested too deep
         raise ModelError(f"cannot store the model state: {exc}") from exc
-    arrays = found[8] + found[4] + found[2] + found[1]
-    table = orjson.dumps([[path, dtype, a.shape] for path, a, dtype in arrays])
-    payload_len = sum(a.nbytes for _, a, _ in arrays)
+    e8, a8 = found[8]
+    e4, a4 = found[4]
+    e2, a2 = found[2]
+    e1, a1 = found[1]
+    table = orjson.dumps(e8 + e4 + e2 + e1)
     flags = _FLAG_SIGNED if key is not None else 0
     pos = _PREAMBLE.size + len(name) + 4 + len(state_json) + 4 + len(table) + 8
-    parts: list[Any] = [_PREAMBLE.pack(MAGIC, FORMAT_VERSION, flags, len(name)), name,
-                        _U32.pack(len(state_json)), state_json, _U32.pack(len(table)), table,
-                        _U64.pack(payload_len), bytes(-pos % _ALIGN)]
-    parts += [a.data if a.ndim else a.tobytes() for _, a, _ in arrays]  # buffers: joined, not copied twice
-    body = b"".join(parts)
+    pad = -pos % _ALIGN
+    # The arrays go to the join as they are (C-contiguous, so each is its own bytes-like buffer): one
+    # copy, into the body. The payload length is known once the body is joined; its field is filled then.
+    body = bytearray().join([_PREAMBLE.pack(MAGIC, FORMAT_VERSION, flags, len(name)), name,
+                             _U32.pack(len(state_json)), state_json, _U32.pack(len(table)), table,
+                             bytes(8 + pad), *a8, *a4, *a2, *a1])
+    _U64.pack_into(body, pos - 8, len(body) - pos - pad)
     mac = hmac.digest(bytes(key), body, "sha256") if key is not None else b""
     check = hashlib.blake2b(body, digest_size=_DIGEST_SIZE)
     check.update(mac)

@@ -1,6 +1,7 @@
 """``tidewatch run`` on Kafka: exactly-once consume, score, produce.
 
-One transactional producer per process (KIP-447 style). At each commit interval,
+One transactional producer per process (KIP-447 style). At each commit interval
+(paced by :class:`CommitPacer`: sooner when caught up, stretched under a backlog),
 inside one transaction, go: the score messages of the windows closed since the
 last commit, the dead-lettered rejects, the changelog records of every service
 whose state changed, and the consumer offsets (``send_offsets_to_transaction`` with
@@ -52,7 +53,7 @@ from service.metrics import build_registry
 from service.stats import RuntimeStats
 from service.windows import Window
 
-__all__ = ["KafkaRunner", "consumer_settings", "producer_settings"]
+__all__ = ["CommitPacer", "KafkaRunner", "consumer_settings", "producer_settings"]
 
 log = logging.getLogger("tidewatch.kafka")
 
@@ -62,6 +63,69 @@ _CALL_TIMEOUT = 30.0  # seconds for one transactional call before it is retried
 _STUCK_AFTER_S = _CALL_TIMEOUT + 15.0
 EXIT_STUCK = 75  # EX_TEMPFAIL: the supervisor restarts the worker
 _QUEUE_PAUSE = 20_000  # unkeyed input: queued messages per partition at which fetching it pauses
+_BACKLOG_BATCHES = 10  # batches still to read from which commits are stretched (CommitPacer.min_backlog)
+
+
+class CommitPacer:
+    """When the loop commits: every ``interval``, sooner when caught up with scores waiting, later under a backlog.
+
+    Caught up (the last batch was not full), a transaction that holds scores goes as soon as a tenth of an
+    interval has passed since the last commit, rather than holding alerts back for the rest of the interval;
+    otherwise the interval commits. Behind by a backlog (the batch was full and at least ``min_backlog``
+    messages are still to read), a commit is due once the interval has passed *and* ``work_per_commit`` times
+    the last commit's duration has gone by since it ended, at most ``stretch_max`` intervals: a commit writes
+    the record of every model scored since the last one, under a backlog that is nearly every model however
+    short the interval, so its cost hardly grows with the gap and committing then takes at most
+    ``1 / (1 + work_per_commit)`` of the loop's time. A full batch with less than that left to read (the
+    messages that came in while a burst of windows was scored) and the first batch that is not full fall back
+    to the interval and the early commits, so the latency when caught up is unchanged.
+
+    Times are ``time.monotonic()`` seconds, passed in by the caller (no clock is read here).
+
+    >>> p = CommitPacer(1.0, now=0.0, min_backlog=20_000)
+    >>> p.due(1.0, caught_up=False, scores_waiting=True, backlog=lambda: 500_000)
+    True
+    >>> p.committed(started=1.0, ended=1.5)  # a half-second commit: 7.5 s of work before the next
+    >>> p.due(2.6, caught_up=False, scores_waiting=True, backlog=lambda: 450_000)
+    False
+    >>> p.due(2.6, caught_up=False, scores_waiting=True, backlog=lambda: 3_000)
+    True
+    >>> p.due(9.0, caught_up=False, scores_waiting=True, backlog=lambda: 400_000)
+    True
+    """
+
+    __slots__ = ("interval", "min_backlog", "work_per_commit", "stretch_max", "next_tick", "last_end", "gap")
+
+    def __init__(self, interval: float, *, now: float, min_backlog: int, work_per_commit: float = 15.0,
+                 stretch_max: float = 10.0) -> None:
+        self.interval = interval
+        self.min_backlog = min_backlog
+        # 15: commits take at most 1/16 (about 6 %) of the loop under a backlog.
+        self.work_per_commit = work_per_commit
+        # 10 intervals: bounds the work redone after a crash and how long a transaction stays open under a
+        # backlog (10 s at the default interval, far below the producer's transaction.timeout.ms).
+        self.stretch_max = stretch_max
+        self.next_tick = now + interval
+        self.last_end = float("-inf")
+        self.gap = 0.0  # seconds of work due after the last commit under a backlog; 0 until one was timed
+
+    def due(self, now: float, *, caught_up: bool, scores_waiting: bool, backlog: Callable[[], int]) -> bool:
+        """Commit now? ``backlog()`` gives the messages still to read; asked only when the answer turns on it."""
+        if now >= self.next_tick:
+            return caught_up or now >= self.last_end + self.gap or backlog() < self.min_backlog
+        return caught_up and scores_waiting and now >= self.last_end + self.interval / 10
+
+    def committed(self, started: float, ended: float) -> None:
+        """A commit due by :meth:`due` ran from ``started`` to ``ended``."""
+        self.last_end = ended
+        self.gap = min((ended - started) * self.work_per_commit, self.interval * self.stretch_max)
+        # Fixed rate: a commit's own duration does not stretch the interval. Overloaded (a commit longer
+        # than the interval), it falls back to an interval of work between commits. An early commit leaves
+        # the next tick where it was.
+        if ended >= self.next_tick:
+            self.next_tick += self.interval
+            if self.next_tick <= ended:
+                self.next_tick = ended + self.interval
 
 
 class _AbortNeeded(Exception):
@@ -408,6 +472,21 @@ class KafkaRunner:
                 continue
             if high >= 0:
                 lag[(topic, partition)] = max(0, high - offset)
+
+    def _backlog(self) -> int:
+        """Messages still to read on the assigned partitions, from the cached watermarks (no request)."""
+        total = 0
+        for topic, partition in self.assigned:
+            offset = self._next_offset.get((topic, partition))
+            if offset is None:
+                continue
+            try:
+                _low, high = self.consumer.get_watermark_offsets(TopicPartition(topic, partition), cached=True)
+            except KafkaException:
+                continue
+            if high > offset:
+                total += high - offset
+        return total
 
     def _abort(self) -> None:
         """Abort whatever transaction the producer may hold, retrying through broker outages."""
@@ -811,9 +890,9 @@ class KafkaRunner:
             server = MetricsServer(self.http_listen, registry, self.stats).start()
         log.info("consuming", extra={"event": "started", "topics": topics, "instance": self.instance,
                                      "transactional_id": f"{k.group_id}.{self.instance}"})
-        interval = k.commit_interval
-        next_commit = time.monotonic() + interval
-        last_commit = float("-inf")
+        # Ten full batches still to read: more than the input that gathers while a burst of windows is scored
+        # when caught up, far less than a backlog worth stretching the commits for.
+        pacer = CommitPacer(k.commit_interval, now=time.monotonic(), min_backlog=_BACKLOG_BATCHES * k.batch_size)
         try:
             while not self.stop.is_set():
                 msgs = self.consumer.consume(num_messages=k.batch_size, timeout=0.1)
@@ -836,18 +915,9 @@ class KafkaRunner:
                     continue
                 now = time.monotonic()
                 caught_up = len(msgs) < k.batch_size
-                if now >= next_commit or (caught_up and self._closed_at and now >= last_commit + interval / 10):
-                    # On the interval, or early: caught up (the batch was not full) with scores waiting, the
-                    # transaction goes now rather than holding alerts back for the rest of the interval; at
-                    # most ten such commits an interval. Under a backlog only the interval commits.
+                if pacer.due(now, caught_up=caught_up, scores_waiting=bool(self._closed_at), backlog=self._backlog):
                     self.commit()
-                    # Fixed rate: a commit's own duration does not stretch the interval. Overloaded (a commit
-                    # longer than the interval), it falls back to an interval of work between commits.
-                    last_commit = now = time.monotonic()
-                    if now >= next_commit:  # an early commit leaves the next tick where it was
-                        next_commit += interval
-                        if next_commit <= now:
-                            next_commit = now + interval
+                    pacer.committed(now, time.monotonic())
                 elif self.in_txn and caught_up and self.engine.registry.dirty:
                     # Caught up (the batch was not full): use the slack to encode and send the changed
                     # models now, not all at once inside the commit, so the commit only adds what changed

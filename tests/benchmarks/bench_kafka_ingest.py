@@ -25,6 +25,7 @@ import sys
 import tempfile
 import time
 import uuid
+from datetime import datetime
 from pathlib import Path
 
 import orjson
@@ -109,7 +110,9 @@ def main() -> None:
     ap.add_argument("--bare-repeat", type=int, default=5, help="bare drains; the median time counts")
     ap.add_argument("--port", type=int, default=29092)
     ap.add_argument("--timeout", type=float, default=900.0, help="give up on either side after this many seconds")
-    ap.add_argument("--profile", metavar="SVG", help="py-spy flame graph of the tidewatch worker during the run")
+    ap.add_argument("--profile", metavar="SVG", help="py-spy flame graph of the tidewatch worker during the run "
+                    "(a name ending in .txt: collapsed stacks, one line per stack, for grep and sums)")
+    ap.add_argument("--keep-log", metavar="FILE", help="copy tidewatch's JSON log here before the work dir is removed")
     a = ap.parse_args()
     work = Path(tempfile.mkdtemp(prefix="tw-bench-ingest-"))
     fleet = str(work / "fleet.jsonl")
@@ -134,8 +137,9 @@ def main() -> None:
             inst.wait_event("started", 120)
             if a.profile:
                 pid = worker_pid(inst.proc.pid)
+                fmt = ["--format", "raw"] if a.profile.endswith(".txt") else []
                 spy = subprocess.Popen([str(Path(sys.executable).with_name("py-spy")), "record", "-p", str(pid),
-                                        "-o", a.profile, "--nonblocking", "-r", "50"],
+                                        "-o", a.profile, "--nonblocking", "-r", "50", *fmt],
                                        stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
             deadline = inst.started + a.timeout
             while True:
@@ -165,13 +169,21 @@ def main() -> None:
               f"rejected {rejected:.0f}")
         print(f"bare consumer   {n / bare_s:12,.0f} msg/s  (median of {len(drains)} drains, {bare_s:.2f} s; "
               f"fastest {n / drains[0]:,.0f}, slowest {n / drains[-1]:,.0f} msg/s; batch {a.batch})")
+        ts = assigned.get("ts")
+        try:
+            at = datetime.strptime(ts, "%Y-%m-%dT%H:%M:%S.%f%z").timestamp() - inst.started_wall
+            when = f"{at:.2f} s after process start"
+        except (TypeError, ValueError):
+            when = f"at {ts}"
         print(f"tidewatch run   {n / tw_s:12,.0f} msg/s  ({tw_s:.2f} s from process start to offsets committed "
-              f"at the end; first assignment logged at {assigned.get('ts')})")
+              f"at the end; first assignment logged {when})")
         print(f"ratio           {bare_s / tw_s:.3f}   (target >= 0.5)")
         print(f"bytes on the broker: input {input_b / 2**20:,.0f} MiB, changelog written by tidewatch "
               f"{changelog_b / 2**20:,.0f} MiB ({changelog_b / max(windows, 1) / 1024:.1f} KiB per window scored)")
         if a.profile:
             print(f"profile         {a.profile}")
+    if a.keep_log:
+        shutil.copyfile(inst.log, a.keep_log)
     shutil.rmtree(work, ignore_errors=True)
 
 
