@@ -269,7 +269,7 @@ class KafkaConfig(_Frozen):
     instance_id: str | None = Field(
         None, description="Stable per-instance name (default: the host name); the transactional id is derived from it."
     )
-    commit_interval: Duration = Field(1.0, gt=0, description="How often scores, state and offsets are committed together; sooner when caught up with scores waiting.")
+    commit_interval: Duration = Field(1.0, gt=0, description="How often scores, state and offsets are committed together; sooner when caught up with scores waiting, up to ten intervals apart while working through a backlog.")
     batch_size: int = Field(2000, ge=1, le=1_000_000, description="Messages taken from the consumer per poll.")
     create_topics: bool = Field(True, description="Create the output, rejects, changelog and repartition topics if missing.")
     replication_factor: int = Field(1, ge=1, le=16, description="Replication factor of topics tidewatch creates.")
