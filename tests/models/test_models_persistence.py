@@ -383,3 +383,39 @@ def test_state_size_at_defaults_is_under_60_kib(kind: str, windows: int) -> None
     print(f"{kind} state record after {windows} windows, 8 features, defaults: {size} bytes "
           f"({size / 1024:.1f} KiB)")
     assert size < 60 * 1024
+
+
+def _array_bytes(obj, seen: set[int]) -> int:
+    """Bytes of every numpy array reachable from ``obj`` through slots, dicts, lists and tuples (views of
+    one buffer counted once)."""
+    if id(obj) in seen:
+        return 0
+    seen.add(id(obj))
+    if isinstance(obj, np.ndarray):
+        base = obj if obj.base is None else obj.base
+        if isinstance(base, np.ndarray) and base is not obj:
+            return _array_bytes(base, seen)
+        return obj.nbytes
+    if isinstance(obj, dict):
+        return sum(_array_bytes(v, seen) for v in obj.values())
+    if isinstance(obj, (list, tuple)):
+        return sum(_array_bytes(v, seen) for v in obj)
+    total = 0
+    for cls in type(obj).__mro__:
+        for name in getattr(cls, "__slots__", ()):
+            if hasattr(obj, name):
+                total += _array_bytes(getattr(obj, name), seen)
+    return total
+
+
+def test_a_live_model_holds_no_more_arrays_than_its_state_needs() -> None:
+    # Memory per live model is what a fleet pays for (BENCHMARKS: under 100 KiB a service). Caches of wider
+    # copies of the trees' arrays once added 40 KiB a model unnoticed; the arrays a scored model keeps must
+    # stay within its saved state's arrays plus a little.
+    model = build_model("svc", ModelSettings())
+    for k in range(300):
+        model.assess({f"m{j}.mean": float(j + (k % 7)) for j in range(5)} | {"count": 6.0},
+                     at=1772409600.0 + 300.0 * k)
+    state_bytes = _array_bytes(model.to_state(), set())
+    live_bytes = _array_bytes(model, set())
+    assert live_bytes <= state_bytes + 4096, (live_bytes, state_bytes)
