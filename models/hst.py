@@ -384,24 +384,24 @@ class HalfSpaceTrees:
         if not walk or walk[0] is not self._feature or walk[1] is not self._threshold:
             height, n_internal, n_nodes = self.height, 2 ** self.height - 1, self.n_nodes
             walk = self._walk = (
-                self._feature, self._threshold, self._feature, self._threshold,
+                self._feature, self._threshold,
                 tuple(range(-1, self.n_trees * n_internal - 1, n_internal)),  # each tree's bytes, minus 1
                 range(height),
                 np.arange(height, -1, -1, dtype=np.intp),  # depth d is the leaf's number >> (height - d)
                 (np.arange(self.n_trees, dtype=np.intp) * n_nodes - 1)[:, None],
             )
-        go_right = (v.take(walk[2]) >= walk[3]).tobytes()
+        go_right = (v.take(walk[0]) >= walk[1]).tobytes()
         # Numbered from 1 in heap order (children of j: 2j, 2j + 1; node i of the 0-based heap is
         # j = i + 1), a node's number is its path's bits: the leaf gives every node above it.
         leaves = []
         append = leaves.append
-        levels = walk[5]
-        for base in walk[4]:
+        levels = walk[3]
+        for base in walk[2]:
             j = 1
             for _ in levels:
                 j = 2 * j + go_right[base + j]
             append(j)
-        return (np.array(leaves, dtype=np.intp)[:, None] >> walk[6]) + walk[7]
+        return (np.array(leaves, dtype=np.intp)[:, None] >> walk[4]) + walk[5]
 
     def _score_path(self, path: np.ndarray) -> float:
         """Normalised score of paths of shape ``(..., n_trees, height + 1)``, summed per row."""

@@ -34,7 +34,7 @@ import socket
 import threading
 import time
 from collections import deque
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
 from typing import Any, TypeVar
 
 import orjson
@@ -459,9 +459,11 @@ class KafkaRunner:
             log.warning("transaction aborted; rewinding to the committed offsets", extra={"event": "txn_abort", "error": str(exc)})
             self._abort_and_rewind()
 
-    def _record_lag(self) -> None:
-        # Cached watermarks come with every fetch response: no extra request per commit.
-        lag = self.stats.consumer_lag
+    def _cached_lag(self) -> Iterator[tuple[tuple[str, int], int]]:
+        """``((topic, partition), high watermark - next offset)`` of each assigned partition with both known.
+
+        Cached watermarks come with every fetch response: no extra request.
+        """
         for topic, partition in self.assigned:
             offset = self._next_offset.get((topic, partition))
             if offset is None:
@@ -471,22 +473,16 @@ class KafkaRunner:
             except KafkaException:
                 continue
             if high >= 0:
-                lag[(topic, partition)] = max(0, high - offset)
+                yield (topic, partition), high - offset
+
+    def _record_lag(self) -> None:
+        lag = self.stats.consumer_lag
+        for tp, behind in self._cached_lag():
+            lag[tp] = max(0, behind)
 
     def _backlog(self) -> int:
         """Messages still to read on the assigned partitions, from the cached watermarks (no request)."""
-        total = 0
-        for topic, partition in self.assigned:
-            offset = self._next_offset.get((topic, partition))
-            if offset is None:
-                continue
-            try:
-                _low, high = self.consumer.get_watermark_offsets(TopicPartition(topic, partition), cached=True)
-            except KafkaException:
-                continue
-            if high > offset:
-                total += high - offset
-        return total
+        return sum(behind for _tp, behind in self._cached_lag() if behind > 0)
 
     def _abort(self) -> None:
         """Abort whatever transaction the producer may hold, retrying through broker outages."""
