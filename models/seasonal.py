@@ -570,6 +570,25 @@ class SeasonalBaseline:
             yn[i] = k * yn[i] + (1.0 if hit else 0.0)
             ye[i] = k * ye[i] + (excess if hit else 0.0)
 
+    def learn_lesson(self, idx: Sequence[int], z: Sequence[float], drift: Sequence[float]) -> None:
+        """Count one window's deviations ``|z|`` and ``|drift|`` in the tails of the features at
+        ``idx`` (scorable, not held), as :meth:`learn_tail` does with its evidence.
+
+        The model calls it when an alert ends, with its first window's deviations: the lesson
+        that such deviations happen applies to later incidents, not to the one it came from.
+        """
+        f = self._f
+        k = 0.5 ** (1.0 / (TAIL_FACTOR * self.half_life))
+        for part, values in (("x", z), ("y", drift)):
+            r, w, n, e = f[part + "r"], f[part + "w"], f[part + "n"], f[part + "e"]
+            for i, v in zip(idx, values):
+                excess = abs(v) - TAIL_LEVEL
+                hit = excess > 0.0
+                r[i] = k * r[i] + (1.0 if hit else 0.0)
+                w[i] = k * w[i] + 1.0
+                n[i] = k * n[i] + (1.0 if hit else 0.0)
+                e[i] = k * e[i] + (excess if hit else 0.0)
+
     def reset_drift(self) -> None:
         """Forget the running drift of every feature (the evidence that opened an alert is spent)."""
         ez = self._f["ez"]
@@ -620,11 +639,20 @@ class SeasonalBaseline:
         """Move each prediction of the features at ``idx`` by the given offsets.
 
         Used when a level shift has persisted: the shifted baseline predicts the new level
-        straight away, while its scales and profile shapes are kept.
+        straight away, while its scales and profile shapes are kept. A feature still repeating
+        one value within three of its scales of its prediction is not moved.
         """
         f = self._f
         run, rep, repw, rpend = self._i["run"], f["rep"], f["repw"], f["rpend"]
         for i, (d0, d1, d2) in zip(idx, offsets):
+            if run[i] > 0:
+                # Frozen at an ordinary value (within three scales of the prediction in use): the
+                # repeating is the new normal, not the value. Moved to the frozen value, the level
+                # would be off when the metric moves again and open a second alert then.
+                b = self._best(i)
+                err = (f["err0"][i], min(f["err1"][i], f["err1b"][i]), f["err2"][i])[b]
+                if abs((d0, d1, d2)[b]) < TAIL_LEVEL * MAD_TO_SD * err:
+                    d0 = d1 = d2 = 0.0
             f["level"][i] += d0
             f["off_day"][i] += d1
             f["off_week"][i] += d2

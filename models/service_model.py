@@ -28,6 +28,12 @@ The pieces (``ModelSettings.kind`` chooses how the window's tail probability ``p
   (incidents caught, false alert onsets per service-week) from (8/12, 1.75) to (8/12, 1.50) for
   seed 7, (8/12, 1.50) to (7/12, 1.33) for seed 1 and (9/12, 1.42) to (9/12, 1.25) for seed 2.
 
+After warm-up, the window's ``p`` is the smaller of its own and "two of the last three windows
+this rare" (:func:`~models.calibration.pair_tail`: ``10 * (3x^2 - 2x^3)`` for the second smallest
+``x`` of the three windows' own tail probabilities, when this window is one of the two rarest).
+Evidence too weak for a page in one window is then enough in two out of three: at the default
+threshold each must be rarer than about 1.8e-3.
+
 The calibrated score is ``1 - sqrt(p)`` (:func:`~models.calibration.surprise_score`): at the
 default threshold 0.99 a window must be rarer than 1 in 10 000 to open an alert.
 
@@ -36,10 +42,15 @@ Alert state (``Assessment.anomalous``), with hysteresis:
 * an alert opens on a warmed-up window with ``score >= threshold``;
 * while open, a window with ``score >= min(exit_level, threshold)`` resets the calm count and
   any other window adds one; the alert clears on the ``calm_windows``-th calm window in a row
-  (that window is not anomalous). One incident therefore gives one alert onset, and a recovered
-  service clears after ``calm_windows`` windows;
+  (that window is not anomalous). With the defaults (``exit_level`` 0.99, ``calm_windows`` 1)
+  the hysteresis is the two-of-three evidence: after a window rarer than 1.8e-3 the next one
+  keeps the alert open at that level too, so an incident that wobbles stays one alert, and the
+  first window that is ordinary with its neighbours clears it;
 * nothing is learned from a window while its alert is open (baseline, trees and calibration all
-  stay as they were), so an incident never becomes the normal it is measured against;
+  stay as they were), so an incident never becomes the normal it is measured against. The
+  alert's first window is counted once in the features' tails when the alert ends (so a kind of
+  event that keeps recurring stops being surprising), not while the incident it came from is
+  still being judged;
 * an alert still open after ``adapt_after`` windows is a new normal (a deploy that moved a
   level): every prediction is moved by the mean deviation seen during the alert, the alert
   clears on that window and learning resumes. See ``ModelSettings.adapt_after`` for the reasons
@@ -69,7 +80,7 @@ Examples
 ('latency_p95_ms.mean', 450.0, 202.1, 35.2)
 >>> [model.assess({"latency_p95_ms.mean": 201.0 + i, "count": 12.0 + i % 3},
 ...               at=1772409600.0 + 300.0 * (301 + i)).anomalous for i in range(4)]
-[True, False, False, False]
+[False, False, False, False]
 """
 
 from __future__ import annotations
@@ -83,7 +94,7 @@ from typing import Any
 import numpy as np
 
 from models.base import split_features
-from models.calibration import TailCalibrator, surprise_score
+from models.calibration import TailCalibrator, pair_tail, surprise_score
 from models.errors import CorruptState, SettingsError, StateError
 from models.hst import HalfSpaceTrees
 from models.seasonal import Evidence, SeasonalBaseline, tail_deviate
@@ -109,11 +120,14 @@ _TREE_PARTS = ("level", "change")
 #: Model state format. 3 added the baseline's drift statistics and tail clusters
 #: (:data:`models.seasonal.NEW_IN_FORMAT_3`); 4 added each feature's held value and its count
 #: of windows away from it (:data:`models.seasonal.NEW_IN_FORMAT_4`); 5 the repeats of a run in
-#: progress, kept out of the repeat rate until the run ends (:data:`models.seasonal.NEW_IN_FORMAT_5`).
-#: Formats 2 to 4 still load, with the missing statistics at the values of a feature that is
-#: where it was.
-_STATE_FORMAT = 5
-_READABLE_FORMATS = (2, 3, 4, 5)
+#: progress, kept out of the repeat rate until the run ends (:data:`models.seasonal.NEW_IN_FORMAT_5`);
+#: 6 the tail probabilities of the last two windows (``alert.recent_p``, for the two-of-three
+#: evidence) and the open alert's first-window deviations still to be counted in the tails
+#: (``alert.lesson_at``, ``alert.lesson``). Formats 2 to 5 still load, with the missing
+#: statistics at the values of a feature that is where it was, no recent windows (``recent_p``
+#: of 1.0: nothing rare) and no lesson waiting (an older state's open alert already taught it).
+_STATE_FORMAT = 6
+_READABLE_FORMATS = (2, 3, 4, 5, 6)
 
 
 @dataclass(slots=True)
@@ -164,7 +178,8 @@ class ServiceModel:
 
     __slots__ = ("service", "settings", "kind", "windows_seen", "_baseline", "_trees",
                  "_cal_trees", "_alert_on", "_alert_len", "_calm",
-                 "_shift", "_shift_n", "_last_at", "_tree_slots", "_tree_slots_for")
+                 "_shift", "_shift_n", "_last_at", "_tree_slots", "_tree_slots_for",
+                 "_p_before", "_p_earlier", "_lesson")
 
     def __init__(self, service: str, settings: ModelSettings) -> None:
         if not isinstance(service, str) or not service:
@@ -189,6 +204,12 @@ class ServiceModel:
         self._shift: dict[int, list[float]] = {}
         self._shift_n = 0
         self._last_at = math.nan
+        # The tail probabilities of the two windows before this one (after warm-up; 1.0 before
+        # there were any), for the two-of-three evidence (:func:`models.calibration.pair_tail`).
+        self._p_before = 1.0
+        self._p_earlier = 1.0
+        # The first window of the open alert: positions and their (z, drift), for the tails.
+        self._lesson: list[tuple[int, float, float]] = []
         # Tree-vector positions (level, change) of each feature name, for the trees in
         # ``_tree_slots_for`` (a cache: rebuilt if the trees are replaced; not part of the state).
         self._tree_slots: dict[str, tuple[int, int] | None] = {}
@@ -267,9 +288,17 @@ class ServiceModel:
                 raw = self._trees._score_path(path)
                 if ready_t:
                     p = self._cal_trees.p_value(raw)
-        score = surprise_score(p)
-
         warming_up = self.windows_seen < self.settings.warm_up
+        if not warming_up:
+            # Two of the last three windows rare together are evidence that neither is alone (a
+            # slow rise, a drop that wobbles). The window keeps its own p in the history; the
+            # score takes the smaller of the two.
+            p_own = p
+            p_pair = pair_tail(p, self._p_before, self._p_earlier)
+            if p_pair < p:
+                p = p_pair
+            self._p_earlier, self._p_before = self._p_before, p_own
+        score = surprise_score(p)
         self.windows_seen += 1
         anomalous = self._decide(score, warming_up, idx, values, at)
 
@@ -277,10 +306,18 @@ class ServiceModel:
         if anomalous and self._alert_len == 1:
             # The first window of an alert counts once in the features' tails: how often a
             # feature produces alert-sized deviations is what makes a routine one unsurprising.
-            baseline.learn_tail(idx, evidence)
+            # It is counted when the alert ends: taught at once, one 17-sigma window made the
+            # same incident's 11-sigma windows look routine (p about 4e-4), so they no longer
+            # kept the alert open and it flapped.
+            self._lesson = [(i, e.z, e.drift) for i, e in zip(idx, evidence)
+                            if e.scorable and not e.held]
             # The run of deviations that opened the alert is spent: after the alert the drift
             # starts again from nothing, so one incident does not reopen as a "drift".
             baseline.reset_drift()
+        if learn and self._lesson:
+            lesson, self._lesson = self._lesson, []
+            baseline.learn_lesson([i for i, _, _ in lesson], [z for _, z, _ in lesson],
+                                  [d for _, _, d in lesson])
         baseline.update(idx, values, at, learn=learn, evidence=evidence)
         if learn and path is not None:
             if ready_t:
@@ -323,6 +360,8 @@ class ServiceModel:
             n = self._shift_n
             positions = sorted(shift)
             self._baseline.shift(positions, [tuple(v / n for v in shift[i]) for i in positions])
+            # The windows before were judged against the old level: they are no evidence now.
+            self._p_before = self._p_earlier = 1.0
             self._alert_on = False
             self._shift, self._shift_n = {}, 0
             return False
@@ -395,6 +434,10 @@ class ServiceModel:
                 "shift": np.array([self._shift[i] for i in positions],
                                   dtype=np.float64).reshape(len(positions), 3),
                 "last_at": np.array([self._last_at], dtype=np.float64),
+                "recent_p": np.array([self._p_earlier, self._p_before], dtype=np.float64),
+                "lesson_at": np.array([i for i, _, _ in self._lesson], dtype=np.int64),
+                "lesson": np.array([(z, d) for _, z, d in self._lesson],
+                                   dtype=np.float64).reshape(len(self._lesson), 2),
             },
         }
 
@@ -440,6 +483,21 @@ class ServiceModel:
             model._shift = {int(i): row for i, row in zip(at.tolist(), shift.tolist())}
             model._shift_n = shift_n
             model._last_at = float(last_at[0])
+            if fmt >= 6:
+                recent = alert["recent_p"]
+                if (not isinstance(recent, np.ndarray) or recent.dtype != np.float64
+                        or recent.shape != (2,) or not ((recent >= 0.0) & (recent <= 1.0)).all()):
+                    raise CorruptState("recent_p must be two tail probabilities in [0, 1]")
+                model._p_earlier, model._p_before = float(recent[0]), float(recent[1])
+                lesson_at, lesson = alert["lesson_at"], alert["lesson"]
+                if (not isinstance(lesson_at, np.ndarray) or lesson_at.dtype != np.int64
+                        or lesson_at.ndim != 1 or not isinstance(lesson, np.ndarray)
+                        or lesson.dtype != np.float64 or lesson.shape != (lesson_at.size, 2)
+                        or not np.isfinite(lesson).all()
+                        or (lesson_at.size and (lesson_at.min() < 0 or lesson_at.max() >= n_features))):
+                    raise CorruptState("malformed alert lesson arrays")
+                model._lesson = [(int(i), float(z), float(d))
+                                 for i, (z, d) in zip(lesson_at.tolist(), lesson.tolist())]
         except StateError:
             raise
         except (KeyError, TypeError, ValueError, AttributeError) as exc:

@@ -75,15 +75,25 @@ class ModelSettings:
         Non-negative integer combined with a stable hash of the service name.
     exit_level
         Alert hysteresis: once alerting, a window scoring at least ``min(exit_level,
-        threshold)`` is not calm; in (0, 1]. The default 0.95 is a tail probability of 0.25 %
-        (see :data:`models.calibration.SCORE_POWER`), 25 times likelier than the entry level:
-        an incident whose score wobbles just under the threshold stays one alert.
+        threshold)`` is not calm; in (0, 1]. The default 0.99 (the default threshold) keeps an
+        alert open exactly while the evidence that opens one is still there. The hysteresis
+        comes from that evidence itself: a window's score includes "two of the last three windows
+        rare" (:func:`models.calibration.pair_tail`), so once an alert-sized window has been seen
+        the next one keeps the alert open at a tail probability of about 1.8e-3 (score 0.957),
+        18 times likelier than the entry level. With the score alone, before that evidence, the
+        default was 0.95: a level below the threshold was the only way to hold a wobbling
+        incident, and it held every moderately off window of a frozen model for ``adapt_after``
+        windows (with the two-of-three evidence and 0.95, the NAB development slice's emitted
+        score fell from 55.2 to 44.5).
     calm_windows
         Alert hysteresis: the alert clears at the ``calm_windows``-th calm window in a row, so
-        every alert lasts at least that long. The default 2 (10 minutes of five-minute windows)
-        bridges a single quiet window inside an incident; on the NAB development slice each
-        extra held window cost about 3 points of the emitted-flag score (every flagged row after
-        an anomaly window is charged), and 2 gave the same demo onsets as 3.
+        every alert lasts at least that long. The default 1 clears an alert on the first window
+        that, with its two predecessors, is no longer alert-sized evidence; a single quiet window
+        inside an incident is bridged when the windows around it are rare together. On the NAB
+        development slice every flagged row after an anomaly window is charged: 2 gave an
+        emitted score of 42.0, 1 gave 55.2 (before the alert's tail lesson moved to its end;
+        BENCHMARKS.md), with the same demo detections and one incident of 36 split into two
+        onsets.
     adapt_after
         An alert still on after this many windows is taken as a new normal: the baseline moves
         to the level seen during the alert, learning resumes and the alert clears. While an alert
@@ -103,8 +113,8 @@ class ModelSettings:
     half_life: float = 24.0
     calibration_history: int = 1000
     seed: int = 0
-    exit_level: float = 0.95
-    calm_windows: int = 2
+    exit_level: float = 0.99
+    calm_windows: int = 1
     adapt_after: int = 36
 
     def __post_init__(self) -> None:

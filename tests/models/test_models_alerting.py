@@ -130,3 +130,80 @@ def test_alert_state_survives_a_round_trip_mid_alert() -> None:
     assert a.alerting
     b = ServiceModel.from_state(a.to_state())
     assert assess_all(a, x[510:], start=510) == assess_all(b, x[510:], start=510)
+
+
+def test_pair_tail_is_the_binomial_tail_of_two_rare_windows_in_three() -> None:
+    from scipy import stats
+
+    from models.calibration import PAIR_DEPENDENCE, pair_tail
+    # Reference: scipy.stats. P(at least 2 of 3 uniforms <= x) is the binomial upper tail and,
+    # as Wilkinson (1951, Psychological Bulletin 48) combines the r-th smallest of k p-values,
+    # the Beta(2, 2) CDF of the second smallest.
+    for x in (1e-6, 1e-4, 1.8e-3, 0.01, 0.1):
+        want = min(1.0, PAIR_DEPENDENCE * stats.binom.sf(1, 3, x))
+        assert math.isclose(pair_tail(x, x, 0.9), want, rel_tol=1e-12)
+        assert math.isclose(want, min(1.0, PAIR_DEPENDENCE * stats.beta.cdf(x, 2, 2)), rel_tol=1e-9)
+        # The second smallest decides, in whichever order the earlier windows came.
+        assert pair_tail(x / 10, x, 0.9) == pair_tail(x / 10, 0.9, x) == pair_tail(x, x, 0.9)
+        assert pair_tail(x, x / 10, 0.9) == pair_tail(x, 0.9, x / 10) == pair_tail(x, x, 0.9)
+    # This window must be one of the two rarest: two old rare windows are not new evidence.
+    assert pair_tail(0.5, 1e-5, 1e-5) == 1.0
+    assert pair_tail(0.2, 0.1, 0.3) == 1.0  # capped
+
+
+def test_two_moderately_rare_windows_open_an_alert_that_either_alone_does_not() -> None:
+    # Windows 4.25 and 5.5 sigma off, two apart: alone, each scores under the threshold.
+    x = noise(11, 600)
+    first, second, both = x.copy(), x.copy(), x.copy()
+    first[500] += 8.5
+    second[502] += 11.0
+    both[500] += 8.5
+    both[502] += 11.0
+    runs = [assess_all(build_model("svc", ModelSettings(kind="adaptive_baseline")), y)
+            for y in (first, second, both)]
+    for r, k in ((runs[0], 500), (runs[1], 502)):
+        assert not any(w.anomalous for w in r[400:])
+        assert 0.9 < r[k].score < 0.99
+    r = runs[2]
+    assert r[500] == runs[0][500]
+    assert onsets(r[400:]) == [102] and r[502].score >= 0.99
+    assert not r[503].anomalous  # the first window that is ordinary with its neighbours clears it
+
+
+def test_the_first_window_of_an_alert_teaches_the_tails_when_the_alert_ends() -> None:
+    model = build_model("svc", ModelSettings(kind="adaptive_baseline"))
+    x = noise(12, 530)
+    x[500:506] += 40.0
+    assess_all(model, x[:500])
+    tails = {k: v.copy() for k, v in model._baseline._f.items() if k[0] in "xy" and k[1:] in "rwne"}
+    during = assess_all(model, x[500:506], start=500)
+    assert all(r.anomalous for r in during)
+    unchanged = {k: v for k, v in model._baseline._f.items() if k in tails}
+    assert all(np.array_equal(tails[k], unchanged[k]) for k in tails)  # nothing learned yet
+    after = assess_all(model, x[506:], start=506)
+    assert not after[0].anomalous
+    i = model._baseline.locate(["lat.mean"])[0]
+    # Exactly one exceedance counted (decayed by the windows learned since).
+    assert 0.9 < model._baseline._f["xn"][i] - tails["xn"][i] <= 1.0
+
+
+def test_a_format_5_state_loads_with_no_recent_windows_and_no_lesson_waiting() -> None:
+    from models import ServiceModel
+    from models.errors import CorruptState
+    x = noise(13, 520)
+    x[505:508] += 40.0
+    a = build_model("svc", ModelSettings())
+    assess_all(a, x[:506])
+    state = a.to_state()
+    assert state["format"] == 6 and state["alert"]["lesson"].shape == (2, 2)  # lat.mean, count
+    old = dict(state, format=5, alert={k: v for k, v in state["alert"].items()
+                                       if k not in ("recent_p", "lesson_at", "lesson")})
+    b = ServiceModel.from_state(old)
+    assert (b._p_earlier, b._p_before, b._lesson) == (1.0, 1.0, [])
+    assert b.to_state()["format"] == 6
+    bad = dict(state, alert={**state["alert"], "recent_p": np.array([0.5, 1.5])})
+    with pytest.raises(CorruptState):
+        ServiceModel.from_state(bad)
+    bad = dict(state, alert={**state["alert"], "lesson_at": np.array([0, 99], dtype=np.int64)})
+    with pytest.raises(CorruptState):
+        ServiceModel.from_state(bad)

@@ -80,7 +80,7 @@ def test_a_format_2_state_loads_with_fresh_drift_statistics() -> None:
     restored = ServiceModel.from_state(old)
     for k in NEW_IN_FORMAT_3:
         assert restored._baseline._f[k] == [0.0] * len(restored._baseline.features)
-    assert restored.to_state()["format"] == 5
+    assert restored.to_state()["format"] == 6
     # It keeps scoring: same predictions as the model it came from.
     ev_a = model._baseline.evidence_one({"cpu.mean": 0.3})["cpu.mean"]
     ev_b = restored._baseline.evidence_one({"cpu.mean": 0.3})["cpu.mean"]
@@ -151,13 +151,13 @@ def test_a_format_3_state_loads_with_the_held_value_at_the_last_value() -> None:
     counter[200] = 0.2
     with_counter(model, cpu(11, 300), counter)
     state = model.to_state()
-    assert state["format"] == 5
+    assert state["format"] == 6
     dropped = set(NEW_IN_FORMAT_4) | set(NEW_INTS_IN_FORMAT_4)
     old = dict(state, format=3, baseline={k: v for k, v in state["baseline"].items() if k not in dropped})
     restored = ServiceModel.from_state(old)
     base = restored._baseline
     assert base._f["held"] == base._f["last"] and base._i["away"] == [0] * len(base.features)
-    assert restored.to_state()["format"] == 5
+    assert restored.to_state()["format"] == 6
     feats = {"cpu.mean": 0.31, "restarts.mean": 0.0, "count": 5.0}
     at = T0 + STEP * 300
     assert model.assess(dict(feats), at=at).score == restored.assess(dict(feats), at=at).score
@@ -263,7 +263,7 @@ def test_a_format_4_state_loads_with_nothing_waiting_and_the_stepped_profile_in_
     base = restored._baseline
     assert base._f["rpend"] == [0.0] * len(base.features)
     assert base._f["err1b"] == base._f["err1"]
-    assert restored.to_state()["format"] == 5
+    assert restored.to_state()["format"] == 6
     a = restored.assess({"cpu.mean": 0.31, "count": 5.0}, at=T0 + STEP * 400)
     assert 0.0 <= a.score <= 1.0
 
