@@ -540,8 +540,9 @@ class SeasonalBaseline:
         return max(gauss, rate * math.exp(-max(0.0, strength - TAIL_LEVEL) / beta))
 
     def learn_tail(self, idx: Sequence[int], evidence: Sequence[Evidence]) -> None:
-        """Count one window in each feature's tail statistics (done by :meth:`update`; the
-        model also calls it for the first window of an alert, so an alert counts as one event).
+        """Count one window in each feature's tail statistics (done by :meth:`update`; for the
+        first window of an alert the model uses :meth:`learn_lesson` when the alert ends, so an
+        alert counts as one event).
 
         Every window counts (not only the first of a run of exceedances): the question asked
         of the tail is how often a *window* is this far out, and a feature whose deviations come
