@@ -296,7 +296,15 @@ def test_sigkill_at_any_point_of_a_save_leaves_a_checkpoint_that_loads_and_resum
     root = str(Path(__file__).resolve().parents[1])
     last = 0
     # Depths into the temporary file; a base of the 40 models is about 1.2 MB, a delta about 30 kB.
-    for at_bytes in (0, 20_000, 300_000, 900_000, 1, 600_000):
+    # The signal can arrive just after the save it was aimed at renamed its file (the kill is sent
+    # after the size is seen): that is still a crash to recover from, but not one inside a write, so
+    # such a depth is tried again (at most 5 times) until a kill leaves a temporary file behind.
+    depths = [(at_bytes, attempt) for at_bytes in (0, 20_000, 300_000, 900_000, 1, 600_000)
+              for attempt in range(5)]
+    inside: set[int] = set()
+    for at_bytes, _attempt in depths:
+        if at_bytes in inside:
+            continue
         proc = subprocess.Popen([sys.executable, "-c", _KILLED_SAVER, str(state)], cwd=root,
                                 stdout=subprocess.PIPE, text=True, env={**os.environ, "PYTHONPATH": root})
         assert proc.stdout is not None
@@ -306,7 +314,8 @@ def test_sigkill_at_any_point_of_a_save_leaves_a_checkpoint_that_loads_and_resum
         proc.wait(timeout=60)
         done = int((first + proc.stdout.read()).split()[-1])  # the last save that returned
         proc.stdout.close()
-        assert list(state.glob(".ckpt-*.tmp")), "the kill did not land inside a write"
+        if list(state.glob(".ckpt-*.tmp")):
+            inside.add(at_bytes)
         restored = CheckpointStore(state, stats=RuntimeStats()).load()
         assert restored.refused == [] and not list(state.glob(".ckpt-*.tmp"))
         n = restored.runtime["n"]
@@ -314,3 +323,4 @@ def test_sigkill_at_any_point_of_a_save_leaves_a_checkpoint_that_loads_and_resum
         assert {s: restored.models[s].windows_seen for s in restored.models} == {
             f"svc-{i}": _windows_after(n, i) for i in range(40)}
         last = n
+    assert inside == {0, 20_000, 300_000, 900_000, 1, 600_000}, "some kills never landed inside a write"
