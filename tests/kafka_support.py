@@ -23,11 +23,17 @@ def produce_lines(bootstrap: str, topic: str, lines: list[bytes], *, keyed: bool
     """Produce native messages; keyed by service (murmur2, as Java producers) or spread round-robin."""
     p = Producer({"bootstrap.servers": bootstrap, "partitioner": "murmur2_random", "linger.ms": 20})
     for i, line in enumerate(lines):
-        if keyed:
-            service = orjson.loads(line)["service"]
-            p.produce(topic, value=line, key=service.encode())
+        args = ({"key": orjson.loads(line)["service"].encode()} if keyed else {"partition": i % partitions})
+        for _ in range(600):
+            try:
+                p.produce(topic, value=line, **args)
+                break
+            except BufferError:
+                # The local queue (100,000 messages by default) is full: let deliveries drain it
+                # (confluent-kafka's documented pattern), for at most about a minute in all.
+                p.poll(0.1)
         else:
-            p.produce(topic, value=line, partition=i % partitions)
+            raise RuntimeError("the producer's local queue stayed full")
         if i % 10000 == 0:
             p.poll(0)
     if p.flush(60) != 0:
