@@ -10,29 +10,13 @@ import time
 import orjson
 import pytest
 
-from service.scenario import generate
 from tests.kafka_broker import broker_outage
 from tests.kafka_support import produce_lines, produce_sentinels, read_scores, start_instance, stop_instance, write_config
-from tests.test_kafka_run import _check, _reference, _topics
+from tests.test_kafka_run import _check, _reference, _topics, busy_lines  # noqa: F401  (fixture)
 
 pytestmark = pytest.mark.kafka
 
 OUTAGE_S = 12.0  # 24 commit intervals of the test config (500 ms)
-
-
-@pytest.fixture(scope="module")
-def outage_lines(tmp_path_factory):
-    """Three days of the demo scenario for 40 services, one scrape a minute each (173,000 lines).
-
-    Enough work that the instance is still scoring when the outage starts: the reader that waits
-    for the first scores needs a few seconds to join its group, and six services' 26,000 lines
-    were all scored within that on a fast machine, so the outage met an idle instance.
-    """
-    d = tmp_path_factory.mktemp("outage-scenario")
-    path = d / "metrics.jsonl"
-    sc = generate(seed=7, days=3.0, services=40)
-    sc.write_jsonl(path)
-    return path.read_bytes().splitlines(), sc.end, path
 
 
 def _events(path) -> list[dict]:
@@ -47,8 +31,8 @@ def _events(path) -> list[dict]:
 
 
 def test_a_broker_outage_while_scoring_commits_nothing_unwritten_and_loses_nothing(
-        kafka_bootstrap, kafka_topic, outage_lines, tmp_path):
-    lines, end, data = outage_lines
+        kafka_bootstrap, kafka_topic, busy_lines, tmp_path):  # noqa: F811
+    lines, end, data = busy_lines
     t = _topics(kafka_topic, 2)
     # A small batch keeps the instance busy through many commits, so the outage lands mid-work.
     cfg = write_config(tmp_path / "tw.toml", kafka_bootstrap, t, batch_size=200)
