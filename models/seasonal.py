@@ -540,9 +540,9 @@ class SeasonalBaseline:
         return max(gauss, rate * math.exp(-max(0.0, strength - TAIL_LEVEL) / beta))
 
     def learn_tail(self, idx: Sequence[int], evidence: Sequence[Evidence]) -> None:
-        """Count one window in each feature's tail statistics (done by :meth:`update`; for the
-        first window of an alert the model uses :meth:`learn_lesson` when the alert ends, so an
-        alert counts as one event).
+        """Count one window in each feature's tail statistics (done by :meth:`update`; the
+        model also calls it for the first window of an alert, when the alert ends, so an alert
+        counts as one event).
 
         Every window counts (not only the first of a run of exceedances): the question asked
         of the tail is how often a *window* is this far out, and a feature whose deviations come
@@ -570,25 +570,6 @@ class SeasonalBaseline:
             yw[i] = k * yw[i] + 1.0
             yn[i] = k * yn[i] + (1.0 if hit else 0.0)
             ye[i] = k * ye[i] + (excess if hit else 0.0)
-
-    def learn_lesson(self, idx: Sequence[int], z: Sequence[float], drift: Sequence[float]) -> None:
-        """Count one window's deviations ``|z|`` and ``|drift|`` in the tails of the features at
-        ``idx`` (scorable, not held), as :meth:`learn_tail` does with its evidence.
-
-        The model calls it when an alert ends, with its first window's deviations: the lesson
-        that such deviations happen applies to later incidents, not to the one it came from.
-        """
-        f = self._f
-        k = 0.5 ** (1.0 / (TAIL_FACTOR * self.half_life))
-        for part, values in (("x", z), ("y", drift)):
-            r, w, n, e = f[part + "r"], f[part + "w"], f[part + "n"], f[part + "e"]
-            for i, v in zip(idx, values):
-                excess = abs(v) - TAIL_LEVEL
-                hit = excess > 0.0
-                r[i] = k * r[i] + (1.0 if hit else 0.0)
-                w[i] = k * w[i] + 1.0
-                n[i] = k * n[i] + (1.0 if hit else 0.0)
-                e[i] = k * e[i] + (excess if hit else 0.0)
 
     def reset_drift(self) -> None:
         """Forget the running drift of every feature (the evidence that opened an alert is spent)."""

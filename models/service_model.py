@@ -316,8 +316,8 @@ class ServiceModel:
             baseline.reset_drift()
         if learn and self._lesson:
             lesson, self._lesson = self._lesson, []
-            baseline.learn_lesson([i for i, _, _ in lesson], [z for _, z, _ in lesson],
-                                  [d for _, _, d in lesson])
+            baseline.learn_tail([i for i, _, _ in lesson],
+                                [Evidence(math.nan, z, 0.0, 0.0, True, drift=d) for _, z, d in lesson])
         baseline.update(idx, values, at, learn=learn, evidence=evidence)
         if learn and path is not None:
             if ready_t:
