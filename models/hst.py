@@ -51,6 +51,7 @@ Examples
 from __future__ import annotations
 
 import math
+import os
 from collections.abc import Mapping
 from typing import Any, NamedTuple
 
@@ -58,6 +59,15 @@ import numpy as np
 
 from models.base import split_features
 from models.errors import CorruptState, SettingsError
+
+try:
+    # The padded rule's build as a plain C loop (models/_treebuild.c), bit-identical to _draw_padded;
+    # absent where the install had no C compiler, off with TIDEWATCH_PURE_PYTHON=1.
+    from models._treebuild import draw_padded as _c_draw_padded
+except ImportError:  # pragma: no cover - depends on the install
+    _c_draw_padded = None
+if os.environ.get("TIDEWATCH_PURE_PYTHON", "") not in ("", "0"):
+    _c_draw_padded = None
 
 __all__ = ["HalfSpaceTrees", "SPLIT_RULES"]
 
@@ -245,7 +255,16 @@ class HalfSpaceTrees:
         self._high = np.array([self.limits.get(n, (0.0, 1.0))[1] for n in names])
         n_f = len(names)
         rng = np.random.default_rng(self.seed)
-        if self.split == "padded":
+        if self.split == "padded" and _c_draw_padded is not None:
+            # The same draws and arithmetic as _draw_padded, node by node in C (models/_treebuild.c).
+            internal = 2 ** self.height - 1
+            draws = rng.random(2 * self.n_trees * internal)
+            feature = np.empty((self.n_trees, internal), dtype=np.int64)
+            threshold = np.empty((self.n_trees, internal), dtype=np.float64)
+            _c_draw_padded(draws, np.ascontiguousarray(self._low, dtype=np.float64),
+                           np.ascontiguousarray(self._high, dtype=np.float64),
+                           self.n_trees, self.height, _PADDING, feature, threshold)
+        elif self.split == "padded":
             feature, threshold = self._draw_padded(rng, n_f)
         else:
             feature, threshold = self._draw_work_range(rng, n_f)

@@ -11,14 +11,30 @@ import time
 from collections.abc import Callable, Sequence
 from typing import Any
 
+import os
+
 from service.config import Config
-from service.decode import NativeDecoder, Rejected
+from service.decode import MIN_EVENT_TS, NativeDecoder, Rejected
 from service.registry import ModelRegistry
 from service.scoremsg import encode_score
 from service.stats import RuntimeStats
+from service.timefmt import MS_THRESHOLD
 from service.windows import SourceWindows, Window, window_features
 
-__all__ = ["Engine", "ScoreSink", "RejectSink"]
+try:
+    # The C hot path (service/_hotpath.c): takes the common-case lines of a batch and hands the rest
+    # back to the loop below. Built at install where a C compiler is at hand; without it, or with
+    # TIDEWATCH_PURE_PYTHON=1, the Python loop does the same work alone.
+    from service._hotpath import Scanner as _Scanner
+except ImportError:  # pragma: no cover - depends on the install
+    _Scanner = None
+if os.environ.get("TIDEWATCH_PURE_PYTHON", "") not in ("", "0"):
+    _Scanner = None
+
+#: Whether this process feeds batches through the C hot path.
+HOT_PATH = _Scanner is not None
+
+__all__ = ["Engine", "ScoreSink", "RejectSink", "HOT_PATH"]
 
 # on_score(service, payload, window): payload is the encoded score message.
 ScoreSink = Callable[[str, bytes, Window], None]
@@ -68,6 +84,8 @@ class Engine:
         self.sources: dict[str, SourceWindows] = {}
         # service -> the source its messages arrive on (its state is kept with that source)
         self.owner: dict[str, SourceWindows] = {}
+        self._scanner = (_Scanner(min_event_ts=MIN_EVENT_TS, ms_threshold=MS_THRESHOLD)
+                         if _Scanner is not None else None)
 
     def source(self, source_id: str) -> SourceWindows:
         src = self.sources.get(source_id)
@@ -103,6 +121,31 @@ class Engine:
         ``origin_of(i)`` is called only for a rejected message, to say where it came from.
         """
         self.decoder.refresh_clock()
+        scanner = self._scanner
+        if scanner is None or type(raws) is not list:
+            self.stats.accepted += self._feed_range(src, raws, 0, len(raws), origin_of)
+        else:
+            # The C scanner takes lines while they are the common case and stops at the first it does
+            # not take (handed to the Python loop, which then does exactly what it does without the
+            # scanner) or just after a line that made a window due (closed here, as below).
+            decoder, owner, resolved = self.decoder, self.owner, self.registry.resolved
+            scan = scanner.feed
+            n = len(raws)
+            i = accepted = 0
+            while i < n:
+                i, taken, due = scan(decoder, src, raws, i, owner, resolved)
+                accepted += taken
+                if due:
+                    self.close(src.pop_closed())
+                elif i < n:
+                    accepted += self._feed_range(src, raws, i, i + 1, origin_of)
+                    i += 1
+            self.stats.accepted += accepted
+        self.stats.services_tracked = len(self.owner)
+
+    def _feed_range(self, src: SourceWindows, raws: Sequence[bytes], lo: int, hi: int,
+                    origin_of: Callable[[int], Any]) -> int:
+        """The Python loop of :meth:`feed` over ``raws[lo:hi]``; returns how many were accepted."""
         decode = self.decoder.decode
         settings_cache = self.registry.resolved  # the dict itself: a reload clears it in place
         settings_of = self.registry.settings
@@ -113,7 +156,8 @@ class Engine:
         owner = self.owner
         max_services = self.config.limits.max_services
         accepted = 0
-        for i, raw in enumerate(raws):
+        for i in range(lo, hi):
+            raw = raws[i]
             try:
                 service, ts, metrics = decode(raw)
             except Rejected as r:
@@ -149,8 +193,7 @@ class Engine:
             accepted += 1
             if heap and heap[0][0] <= src.high_mark:
                 self.close(src.pop_closed())
-        self.stats.accepted += accepted
-        self.stats.services_tracked = len(owner)
+        return accepted
 
     def feed_payloads(self, src: SourceWindows, raws: Sequence[bytes], origin_of: Callable[[int], Any],
                       decode_many: Callable[[bytes], list]) -> None:

@@ -236,6 +236,18 @@ def test_dockerfile_base_image_entrypoint_and_port():
     assert any("pip install ." in r for r in _dockerfile_instructions("RUN"))
 
 
+def test_dockerfile_compiles_the_c_extensions_and_fails_if_they_do_not():
+    # The extension is optional at install time, so only an import after the install shows that the
+    # image got it; the compiler goes in the same layer it is removed from.
+    [step] = [r for r in _dockerfile_instructions("RUN") if "pip install ." in r]
+    assert step.index("apt-get install") < step.index("gcc") < step.index("pip install .")
+    check = 'python -c "import service._hotpath, models._treebuild"'
+    assert step.index("pip install .") < step.index(check) < step.index("apt-get purge")
+    ext = tomllib.loads((REPO / "pyproject.toml").read_text())["tool"]["setuptools"]["ext-modules"]
+    assert sorted(m["name"] for m in ext) == ["models._treebuild", "service._hotpath"]
+    assert all((REPO / src).exists() for m in ext for src in m["sources"])
+
+
 def test_dockerfile_runs_as_a_non_root_user():
     users = _dockerfile_instructions("USER")
     assert users, "no USER: the container would run as root"

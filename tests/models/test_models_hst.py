@@ -256,7 +256,19 @@ def _plain_padded_build(hst: HalfSpaceTrees, names: list[str]) -> tuple[np.ndarr
     return np.concatenate(feats, axis=1), np.concatenate(cuts, axis=1).astype(np.float32)
 
 
+def test_the_c_tree_build_is_installed_where_the_suite_runs() -> None:
+    # Optional at install time; without this the suite would only test the numpy build unnoticed.
+    import os
+
+    from models import hst as hst_module
+
+    if os.environ.get("TIDEWATCH_PURE_PYTHON", "") in ("", "0"):
+        assert hst_module._c_draw_padded is not None
+
+
 def test_vectorised_padded_build_draws_the_same_trees_as_the_plain_form() -> None:
+    from models import hst as hst_module
+
     # Bit-identical trees from the same seed: saved models and replays must not change with the build.
     rng = np.random.default_rng(11)
     shapes = [(10, 8, 12), (1, 1, 1), (3, 9, 2), (7, 4, 40)] + [
@@ -269,3 +281,14 @@ def test_vectorised_padded_build_draws_the_same_trees_as_the_plain_form() -> Non
         feature, threshold = _plain_padded_build(hst, names)
         assert np.array_equal(hst._feature, feature), (trees, height, n_f)
         assert hst._threshold.tobytes() == threshold.tobytes(), (trees, height, n_f)
+        # Both builds: the C loop (used by build where it is installed) and numpy's, which is the fallback.
+        f_np, t_np = hst._draw_padded(np.random.default_rng(hst.seed), n_f)
+        assert np.array_equal(f_np, feature) and t_np.astype(np.float32).tobytes() == threshold.tobytes()
+        if hst_module._c_draw_padded is not None:
+            # And before the rounding to float32: the C loop's doubles are numpy's, bit for bit.
+            internal = 2 ** height - 1
+            f_c = np.empty((trees, internal), dtype=np.int64)
+            t_c = np.empty((trees, internal), dtype=np.float64)
+            hst_module._c_draw_padded(np.random.default_rng(hst.seed).random(2 * trees * internal), hst._low,
+                                      hst._high, trees, height, hst_module._PADDING, f_c, t_c)
+            assert np.array_equal(f_c, f_np) and t_c.tobytes() == t_np.tobytes(), (trees, height, n_f)
