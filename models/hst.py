@@ -61,13 +61,15 @@ from models.base import split_features
 from models.errors import CorruptState, SettingsError
 
 try:
-    # The padded rule's build as a plain C loop (models/_treebuild.c), bit-identical to _draw_padded;
-    # absent where the install had no C compiler, off with TIDEWATCH_PURE_PYTHON=1.
-    from models._treebuild import draw_padded as _c_draw_padded
+    # The padded rule's build and the walk down the trees as plain C loops (models/_hstcore.c), the same
+    # results as _draw_padded and _path's Python walk; absent where the install had no C compiler, off
+    # with TIDEWATCH_PURE_PYTHON=1.
+    from models._hstcore import draw_padded as _c_draw_padded
+    from models._hstcore import walk as _c_walk
 except ImportError:  # pragma: no cover - depends on the install
-    _c_draw_padded = None
+    _c_draw_padded = _c_walk = None
 if os.environ.get("TIDEWATCH_PURE_PYTHON", "") not in ("", "0"):
-    _c_draw_padded = None
+    _c_draw_padded = _c_walk = None
 
 __all__ = ["HalfSpaceTrees", "SPLIT_RULES"]
 
@@ -256,7 +258,7 @@ class HalfSpaceTrees:
         n_f = len(names)
         rng = np.random.default_rng(self.seed)
         if self.split == "padded" and _c_draw_padded is not None:
-            # The same draws and arithmetic as _draw_padded, node by node in C (models/_treebuild.c).
+            # The same draws and arithmetic as _draw_padded, node by node in C (models/_hstcore.c).
             internal = 2 ** self.height - 1
             draws = rng.random(2 * self.n_trees * internal)
             feature = np.empty((self.n_trees, internal), dtype=np.int64)
@@ -399,6 +401,11 @@ class HalfSpaceTrees:
         # arrays are used as they are: wider copies kept per model (intp indices, float64
         # thresholds) saved about 4 us a window but cost 40 KiB a model at the default 10 trees of
         # height 8, and memory per model is what a fleet pays for.
+        if _c_walk is not None:
+            path = np.empty((self.n_trees, self.height + 1), dtype=np.intp)
+            _c_walk(v if v.flags.c_contiguous and v.dtype == np.float64 else np.ascontiguousarray(v, dtype=np.float64),
+                    self._feature, self._threshold, self.n_trees, self.height, self.n_nodes, path)
+            return path
         walk = self._walk
         if not walk or walk[0] is not self._feature or walk[1] is not self._threshold:
             height, n_internal, n_nodes = self.height, 2 ** self.height - 1, self.n_nodes

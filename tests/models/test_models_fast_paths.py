@@ -75,13 +75,22 @@ def test_single_path_score_matches_the_batch_score() -> None:
             trees._learn_path(path)
 
 
-def test_path_matches_a_level_by_level_walk() -> None:
+@pytest.mark.parametrize("walker", ["c", "python"])
+@pytest.mark.parametrize("n_features", [4, 300])  # uint8 and uint16 split features
+def test_path_matches_a_level_by_level_walk(walker: str, n_features: int, monkeypatch) -> None:
+    from models import hst as hst_module
+
+    if walker == "python":
+        monkeypatch.setattr(hst_module, "_c_walk", None)
+    elif hst_module._c_walk is None:
+        pytest.skip("built without the C extension")
     rng = np.random.default_rng(5)
     trees = HalfSpaceTrees(7, 6, 10, seed=9)
-    trees.build([f"f{i}" for i in range(4)])
+    trees.build([f"f{i}" for i in range(n_features)])
     n_internal = 2 ** trees.height - 1
     for _ in range(200):
-        v = rng.random(4)
+        v = rng.random(n_features)
+        v[rng.integers(0, n_features, 3)] = trees._threshold.ravel()[rng.integers(0, trees._threshold.size, 3)]  # ties
         go_right = v[trees._feature] >= trees._threshold  # float32 thresholds, as stored
         node = np.zeros(trees.n_trees, dtype=np.intp)
         want = [node.copy()]

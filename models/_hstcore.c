@@ -1,5 +1,7 @@
-/* The padded split rule of half-space trees (models/hst.py, HalfSpaceTrees._draw_padded) as a plain loop.
+/* The inner loops of half-space trees (models/hst.py) as plain C loops: the padded split rule of a build
+ * (HalfSpaceTrees._draw_padded) and the walk of one vector down every tree (HalfSpaceTrees._path).
  *
+ * The build.
  * The numpy form draws one level of every tree at a time, about fifteen array operations a level on arrays
  * of a few hundred elements, so a build costs a few hundred microseconds of call overhead; this loop does the
  * same arithmetic node by node. Bit-identical to it: the same draws (taken from the one array that
@@ -14,13 +16,21 @@
  */
 #define PY_SSIZE_T_CLEAN
 #include <Python.h>
+#include <stdint.h>
 #include <string.h>
 
 static int get_buffer(PyObject *obj, Py_buffer *view, const char *what, Py_ssize_t items, int writable) {
     if (PyObject_GetBuffer(obj, view, PyBUF_C_CONTIGUOUS | PyBUF_FORMAT | (writable ? PyBUF_WRITABLE : 0)) < 0)
         return -1;
     const char *fmt = view->format ? view->format : "B";
-    int ok = view->itemsize == 8 && view->len == items * 8 &&
+    int ok;
+    if (strcmp(what, "float32") == 0)
+        ok = view->itemsize == 4 && view->len == items * 4 && strcmp(fmt, "f") == 0;
+    else if (strcmp(what, "intp") == 0)
+        ok = view->itemsize == (Py_ssize_t)sizeof(Py_ssize_t) && view->len == items * view->itemsize &&
+             (strcmp(fmt, "l") == 0 || strcmp(fmt, "q") == 0 || strcmp(fmt, "n") == 0);
+    else
+        ok = view->itemsize == 8 && view->len == items * 8 &&
              (strcmp(what, "int64") == 0 ? (strcmp(fmt, "l") == 0 || strcmp(fmt, "q") == 0) : strcmp(fmt, "d") == 0);
     if (!ok) {
         PyErr_Format(PyExc_ValueError, "expected %zd contiguous %s values", items, what);
@@ -131,16 +141,97 @@ fail_d:
     return NULL;
 }
 
-static PyMethodDef treebuild_functions[] = {
+/* walk(v, feature, threshold, trees, height, n_nodes, path_out): the flat node index (tree * n_nodes +
+ * node, heap order from 0) at every depth of every tree for the vector v, as HalfSpaceTrees._path gives
+ * it. A node sends v right when v[feature] >= threshold (the float32 threshold widened to a double, an
+ * exact conversion, as numpy compares them). */
+static PyObject *walk(PyObject *module, PyObject *args) {
+    PyObject *o_v, *o_feature, *o_threshold, *o_path;
+    Py_ssize_t trees, height, n_nodes;
+    if (!PyArg_ParseTuple(args, "OOOnnnO", &o_v, &o_feature, &o_threshold, &trees, &height, &n_nodes, &o_path))
+        return NULL;
+    if (trees < 1 || height < 1 || height > 24 || n_nodes != ((Py_ssize_t)2 << height) - 1) {
+        PyErr_SetString(PyExc_ValueError, "trees >= 1, 1 <= height <= 24, n_nodes = 2 ** (height + 1) - 1");
+        return NULL;
+    }
+    Py_ssize_t internal = ((Py_ssize_t)1 << height) - 1;
+    Py_buffer vv, vf, vt, vp;
+    if (PyObject_GetBuffer(o_v, &vv, PyBUF_C_CONTIGUOUS | PyBUF_FORMAT) < 0) return NULL;
+    Py_ssize_t n_f = vv.len / 8;
+    if (vv.itemsize != 8 || strcmp(vv.format ? vv.format : "B", "d") != 0) {
+        PyErr_SetString(PyExc_ValueError, "v must be contiguous float64");
+        PyBuffer_Release(&vv);
+        return NULL;
+    }
+    if (PyObject_GetBuffer(o_feature, &vf, PyBUF_C_CONTIGUOUS | PyBUF_FORMAT) < 0) goto fail_v;
+    const char *ff = vf.format ? vf.format : "B";
+    int fsize = (int)vf.itemsize;
+    if (vf.len != trees * internal * fsize || !((fsize == 1 && strcmp(ff, "B") == 0) || (fsize == 2 && strcmp(ff, "H") == 0) ||
+                                                 (fsize == 4 && strcmp(ff, "I") == 0))) {
+        PyErr_SetString(PyExc_ValueError, "feature must be contiguous uint8, uint16 or uint32 of shape (trees, internal)");
+        goto fail_f;
+    }
+    if (get_buffer(o_threshold, &vt, "float32", trees * internal, 0) < 0) goto fail_f;
+    if (get_buffer(o_path, &vp, "intp", trees * (height + 1), 1) < 0) goto fail_t;
+    const double *v = vv.buf;
+    const float *threshold = vt.buf;
+    Py_ssize_t *path = vp.buf;
+    for (Py_ssize_t t = 0; t < trees; t++) {
+        Py_ssize_t node = 0, base = t * internal;
+        Py_ssize_t *out = path + t * (height + 1);
+        out[0] = t * n_nodes;
+        for (Py_ssize_t d = 1; d <= height; d++) {
+            Py_ssize_t f = fsize == 1 ? ((const uint8_t *)vf.buf)[base + node]
+                         : fsize == 2 ? ((const uint16_t *)vf.buf)[base + node]
+                                      : (Py_ssize_t)((const uint32_t *)vf.buf)[base + node];
+            if (f >= n_f) {
+                PyErr_SetString(PyExc_ValueError, "a split feature is beyond the vector");
+                goto fail_p;
+            }
+            node = 2 * node + 1 + (v[f] >= (double)threshold[base + node]);
+            out[d] = t * n_nodes + node;
+        }
+    }
+    PyBuffer_Release(&vp);
+    PyBuffer_Release(&vt);
+    PyBuffer_Release(&vf);
+    PyBuffer_Release(&vv);
+    Py_RETURN_NONE;
+fail_p:
+    PyBuffer_Release(&vp);
+fail_t:
+    PyBuffer_Release(&vt);
+fail_f:
+    PyBuffer_Release(&vf);
+fail_v:
+    PyBuffer_Release(&vv);
+    return NULL;
+}
+
+static PyMethodDef hstcore_functions[] = {
     {"draw_padded", draw_padded, METH_VARARGS,
      "draw_padded(draws, low, high, trees, height, padding, feature_out, threshold_out): the padded rule's "
      "split features and thresholds of every tree, heap order, into the two output arrays."},
+    {"walk", walk, METH_VARARGS,
+     "walk(v, feature, threshold, trees, height, n_nodes, path_out): the flat node index at every depth of "
+     "every tree for the vector v, into path_out of shape (trees, height + 1)."},
     {NULL, NULL, 0, NULL},
 };
 
-static struct PyModuleDef treebuild_module = {
-    PyModuleDef_HEAD_INIT, "models._treebuild", "The half-space trees' padded split rule as a plain loop.", -1,
-    treebuild_functions,
+static struct PyModuleDef hstcore_module = {
+    PyModuleDef_HEAD_INIT, "models._hstcore",
+    "The inner loops of half-space trees as plain C loops (used by models.hst where installed).\n"
+    "\n"
+    "One tree of height 1 that splits feature 0 at 0.5: a vector at 0.7 goes right (node 2).\n"
+    "\n"
+    ">>> import numpy as np\n"
+    ">>> from models._hstcore import walk\n"
+    ">>> path = np.empty((1, 2), dtype=np.intp)\n"
+    ">>> walk(np.array([0.7]), np.zeros((1, 1), np.uint8), np.array([[0.5]], np.float32), 1, 1, 3, path)\n"
+    ">>> path.tolist()\n"
+    "[[0, 2]]\n",
+    -1,
+    hstcore_functions,
 };
 
-PyMODINIT_FUNC PyInit__treebuild(void) { return PyModule_Create(&treebuild_module); }
+PyMODINIT_FUNC PyInit__hstcore(void) { return PyModule_Create(&hstcore_module); }
