@@ -6,7 +6,7 @@ STAMP_RUN := $(VENV)/.installed-run
 STAMP_TEST := $(VENV)/.installed-test
 NAB ?= ../shared/nab-dev
 
-.PHONY: demo test test-fast bench-nab bench-changepoint bench broker-fetch broker-up broker-down clean
+.PHONY: demo test test-fast test-c-sanitized bench-nab bench-changepoint bench broker-fetch broker-up broker-down clean
 
 $(STAMP_RUN): pyproject.toml
 	$(PY) -m venv $(VENV)
@@ -30,6 +30,22 @@ test: $(STAMP_TEST)
 ## test-fast: the suite without the tests that need a broker
 test-fast: $(STAMP_TEST)
 	$(BIN)/python -m pytest -m "not kafka"
+
+## test-c-sanitized: the C accelerators built with AddressSanitizer and UBSan in a scratch copy, and their tests run there
+SANITIZED ?= /tmp/tidewatch-sanitized
+test-c-sanitized: $(STAMP_TEST)
+	rm -rf $(SANITIZED) && mkdir -p $(SANITIZED) && cp -r service models tests pyproject.toml $(SANITIZED)/
+	rm -f $(SANITIZED)/service/*.so $(SANITIZED)/models/*.so
+	cd $(SANITIZED) && for ext in service/_hotpath models/_hstcore; do \
+	  gcc -shared -fPIC -O1 -g -fsanitize=address,undefined -fno-omit-frame-pointer -ffp-contract=off \
+	    -I"$$($(CURDIR)/$(BIN)/python -c 'import sysconfig; print(sysconfig.get_paths()["include"])')" \
+	    $$ext.c -o $$ext"$$($(CURDIR)/$(BIN)/python -c 'import sysconfig; print(sysconfig.get_config_var("EXT_SUFFIX"))')" || exit 1; done
+	cd $(SANITIZED) && export ASAN_OPTIONS=detect_leaks=0:abort_on_error=1 UBSAN_OPTIONS=halt_on_error=1:print_stacktrace=1 \
+	  LD_PRELOAD="$$(gcc -print-file-name=libasan.so) $$(gcc -print-file-name=libubsan.so)" PYTHONPATH=$(SANITIZED) && \
+	  $(CURDIR)/$(BIN)/python -c "import service._hotpath as h, models._hstcore as m, sys; \
+	    sys.exit(0 if h.__file__.startswith('$(SANITIZED)') and m.__file__.startswith('$(SANITIZED)') else 'not the sanitized build')" && \
+	  $(CURDIR)/$(BIN)/python -m pytest -q -p no:cacheprovider tests/test_hotpath.py tests/models/test_models_hst.py \
+	    tests/models/test_models_fast_paths.py
 
 ## bench-nab: NAB scores on a directory laid out like nab-dev (NAB=path)
 bench-nab: $(STAMP_TEST)

@@ -298,3 +298,35 @@ def test_leap_days_and_zone_edges_agree_with_fromisoformat():
                  "2026-03-02T00:01:00.412Z", "2026-12-31T23:59:59+00:00", "2026-03-02T00:01:00"]:
         assert repr(rfc3339(text.encode())) == repr(_python_time(text))
     assert rfc3339(b"2100-02-29T00:00:00Z") is None and _python_time("2100-02-29T00:00:00Z") is None
+
+
+_VALID = [
+    b'{"service":"api","ts":%d,"metrics":{"lat":12.5,"err":0,"cpu":0.25}}' % (T0 + 5),
+    b'{"service":"db","ts":"2026-03-02T00:00:07.250Z","metrics":{"lat":3e2,"err":1,"cpu":-0.5},"labels":{"az":"n"}}',
+    b' {"metrics": {"cpu": 1, "lat": 2, "err": 3}, "labels": null, "ts": %d, "service": "cache"}\r' % (T0 + 6),
+]
+
+
+@st.composite
+def mutated(draw) -> bytes:
+    # A valid line with bytes flipped, inserted, deleted or cut off: the scanner reads untrusted input in
+    # C, so whatever it meets it must neither read past the line nor decide otherwise than the Python path.
+    line = bytearray(draw(st.sampled_from(_VALID)))
+    for _ in range(draw(st.integers(1, 4))):
+        op = draw(st.integers(0, 3))
+        at = draw(st.integers(0, max(0, len(line) - 1)))
+        if op == 0 and line:
+            line[at] = draw(st.integers(0, 255))
+        elif op == 1:
+            line[at:at] = draw(st.binary(min_size=1, max_size=4))
+        elif op == 2 and line:
+            del line[at]
+        else:
+            del line[at:]
+    return bytes(line)
+
+
+@settings(max_examples=400, deadline=None)
+@given(st.lists(st.one_of(mutated(), st.sampled_from(_VALID), st.binary(max_size=64)), min_size=1, max_size=30))
+def test_damaged_lines_are_decided_as_the_python_path_decides(lines):
+    _same(lines)
