@@ -69,6 +69,7 @@ Examples
 from __future__ import annotations
 
 import math
+import os
 from array import array
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
@@ -187,6 +188,27 @@ HOLD_RATE = 0.95
 _SQRT2 = math.sqrt(2.0)
 _GAUSS_RATE_PRIOR = GAUSS_RATE * TAIL_PRIOR_WINDOWS
 _GAUSS_EXCESS_PRIOR = GAUSS_EXCESS * TAIL_PRIOR_EVENTS
+
+try:
+    # SeasonalBaseline.compare as a C loop (models/_baselinecore.c): the same evidence bit for bit, from the
+    # same statistics read in place; absent where the install had no C compiler, off with
+    # TIDEWATCH_PURE_PYTHON=1. Its constants are these, handed over once.
+    from models import _baselinecore
+except ImportError:  # pragma: no cover - depends on the install
+    _baselinecore = None
+if os.environ.get("TIDEWATCH_PURE_PYTHON", "") not in ("", "0"):
+    _baselinecore = None
+_c_compare = None
+if _baselinecore is not None:
+    _baselinecore.configure({
+        "PREFER_SIMPLER": PREFER_SIMPLER, "MAD_TO_SD": MAD_TO_SD, "Z_LIMIT": Z_LIMIT,
+        "STUCK_PRIOR_REPEATS": STUCK_PRIOR_REPEATS, "STUCK_MAX_RATE": STUCK_MAX_RATE,
+        "STUCK_PRIOR_RUNS": STUCK_PRIOR_RUNS, "STUCK_DIRECT_RATE": STUCK_DIRECT_RATE, "DRIFT_CLIP": DRIFT_CLIP,
+        "DRIFT_LAMBDA": DRIFT_LAMBDA, "_DRIFT_VAR0_PRIOR": _DRIFT_VAR0_PRIOR, "TAIL_PRIOR_WINDOWS": TAIL_PRIOR_WINDOWS,
+        "_GAUSS_RATE_PRIOR": _GAUSS_RATE_PRIOR, "_GAUSS_EXCESS_PRIOR": _GAUSS_EXCESS_PRIOR,
+        "TAIL_PRIOR_EVENTS": TAIL_PRIOR_EVENTS, "TAIL_LEVEL": TAIL_LEVEL, "_SQRT2": _SQRT2, "HOLD_RATE": HOLD_RATE,
+    })
+    _c_compare = _baselinecore.compare
 
 
 def slots_of(at: float) -> tuple[int, int]:
@@ -373,6 +395,16 @@ class SeasonalBaseline:
     def compare(self, idx: Sequence[int], values: Sequence[float], at: float | None
                 ) -> list[Evidence]:
         """Evidence for ``values`` at positions ``idx`` (from :meth:`locate`), before learning."""
+        if _c_compare is not None and type(idx) is list and type(values) is list:
+            # The loop below in C (models/_baselinecore.c), the same evidence bit for bit.
+            use_day, use_week = self._cycles(at)
+            return _c_compare(self, idx, values, use_day, use_week,
+                              blend_of(at) if at is not None else (0, 0, 0, 0, 0.0), Evidence, tail_deviate)
+        return self._compare(idx, values, at)
+
+    def _compare(self, idx: Sequence[int], values: Sequence[float], at: float | None
+                 ) -> list[Evidence]:
+        """:meth:`compare` in Python: the reference of the C loop, and its fallback."""
         # The predictions, the best-prediction choice and the tail probabilities of
         # :meth:`_predictions`, :meth:`_best` and :meth:`_tail_p` are written out in the loop:
         # it runs once per feature per window, where the calls and the per-call lookups of the
@@ -791,14 +823,16 @@ class SeasonalBaseline:
                     row[hour] = x
                 rown[hour] = nd + 1 if nd < 65535 else 65535
                 row, rown = week[i], week_n[i]
-                nw = rown[how]
-                if nw:
+                # (``seen``, not ``nw``: that name is the blend's neighbouring week slot, which the
+                # next feature's prediction reads; reusing it here once read a count as a slot.)
+                seen = rown[how]
+                if seen:
                     off_w[i] += a * ((x - row[how]) - off_w[i])
-                    rate = 1.0 / (nw + 1)
+                    rate = 1.0 / (seen + 1)
                     row[how] += (rate if rate > a_week else a_week) * (x - row[how])
                 else:
                     row[how] = x
-                rown[how] = nw + 1 if nw < 65535 else 65535
+                rown[how] = seen + 1 if seen < 65535 else 65535
             count[i] = n + 1
 
     def observe_step(self, gap: float) -> None:

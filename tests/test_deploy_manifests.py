@@ -241,10 +241,10 @@ def test_dockerfile_compiles_the_c_extensions_and_fails_if_they_do_not():
     # image got it; the compiler goes in the same layer it is removed from.
     [step] = [r for r in _dockerfile_instructions("RUN") if "pip install ." in r]
     assert step.index("apt-get install") < step.index("gcc") < step.index("pip install .")
-    check = 'python -c "import service._hotpath, models._hstcore"'
+    check = 'python -c "import service._hotpath, models._hstcore, models._baselinecore"'
     assert step.index("pip install .") < step.index(check) < step.index("apt-get purge")
     ext = tomllib.loads((REPO / "pyproject.toml").read_text())["tool"]["setuptools"]["ext-modules"]
-    assert sorted(m["name"] for m in ext) == ["models._hstcore", "service._hotpath"]
+    assert sorted(m["name"] for m in ext) == ["models._baselinecore", "models._hstcore", "service._hotpath"]
     assert all((REPO / src).exists() for m in ext for src in m["sources"])
 
 

@@ -99,3 +99,75 @@ def test_path_matches_a_level_by_level_walk(walker: str, n_features: int, monkey
             want.append(node.copy())
         want = np.stack(want, axis=1) + (np.arange(trees.n_trees) * trees.n_nodes)[:, None]
         np.testing.assert_array_equal(trees._path(v), want)
+
+
+def _fields(ev) -> tuple:
+    return tuple((type(v), repr(v)) for v in (ev.expected, ev.z, ev.change, ev.stuck, ev.scorable, ev.p, ev.drift,
+                                               ev.held))
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2])
+@pytest.mark.parametrize("timed", [True, False])
+def test_the_c_compare_gives_the_python_compare_s_evidence_bit_for_bit(seed: int, timed: bool) -> None:
+    from models import seasonal
+
+    if seasonal._c_compare is None:
+        pytest.skip("built without the C extension")
+    base = SeasonalBaseline(24.0)
+    rng = np.random.default_rng(seed)
+    compared = stuck = held = 0
+    # Three weeks of five-minute windows: both profiles come into use (two cycles each), and the
+    # stream's spikes, repeats, held counter and stuck run reach every branch.
+    for k, feats in enumerate(stream(seed, 21 * 288)):
+        at = T0 + STEP * k if timed else None
+        names = list(feats)
+        if rng.random() < 0.1:
+            names.pop(int(rng.integers(0, len(names))))  # a feature missing from a window
+        values = [feats[n] for n in names]
+        idx = base.locate(names, add=True)
+        fast = base.compare(idx, values, at)
+        slow = base._compare(idx, values, at)
+        assert [_fields(e) for e in fast] == [_fields(e) for e in slow], k
+        compared += len(fast)
+        stuck += sum(e.stuck > 0.0 for e in fast)
+        held += sum(e.held for e in fast)
+        base.update(idx, values, at, learn=rng.random() > 0.05, evidence=fast)
+    assert compared > 20000 and stuck > 10 and held > 100
+
+
+def _smooth_week_stream(n: int, seed: int):
+    rng = np.random.default_rng(seed)
+    for k in range(n):
+        at = T0 + STEP * k
+        day = math.sin(2.0 * math.pi * (at % 86400.0) / 86400.0)
+        yield at, {"lat.mean": 200.0 + 50.0 * day + rng.standard_normal(),
+                   "count": float(round(30.0 + 10.0 * day + rng.standard_normal())),
+                   "cpu.mean": 0.5 + 0.2 * day + 0.01 * rng.standard_normal()}
+
+
+def test_feature_order_does_not_change_what_the_baseline_learns() -> None:
+    # A river-style check (common practice for online estimators): the same window in another key order
+    # must teach the same statistics. It caught the week profile's update reading a slot count as the
+    # neighbouring slot for every feature after the first, once both profiles were in use.
+    forward, backward = SeasonalBaseline(24.0), SeasonalBaseline(24.0)
+    for at, feats in _smooth_week_stream(3 * 7 * 288, seed=3):
+        for base, names in ((forward, list(feats)), (backward, list(feats)[::-1])):
+            values = [feats[n] for n in names]
+            idx = base.locate(names, add=True)
+            base.update(idx, values, at, evidence=base.compare(idx, values, at))
+    for name in feats:
+        i, j = forward._index[name], backward._index[name]
+        assert {k: v[i] for k, v in forward._f.items()} == {k: v[j] for k, v in backward._f.items()}, name
+        assert forward._week[i] == backward._week[j] and forward._week_n[i] == backward._week_n[j]
+
+
+def test_fifteen_weeks_of_five_minute_windows_run_through() -> None:
+    # Past 14 weeks a week slot has been visited more than 167 times; the bug above then indexed the
+    # profile with that count and raised IndexError.
+    base = SeasonalBaseline(24.0)
+    for at, feats in _smooth_week_stream(15 * 7 * 288, seed=4):
+        names = list(feats)
+        values = [feats[n] for n in names]
+        idx = base.locate(names, add=True)
+        base.update(idx, values, at, evidence=base.compare(idx, values, at))
+    assert min(base._week_n[0]) >= 15 * 12 - 12

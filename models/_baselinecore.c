@@ -1,0 +1,446 @@
+/* SeasonalBaseline.compare (models/seasonal.py) as a C loop: the evidence of one window, feature by feature.
+ *
+ * The Python method is the reference and the fallback; this is the same code, line for line, on the same
+ * statistics (the baseline's Python lists of floats and its array('d') / array('H') profiles, read in place),
+ * with the same operations in the same order and the same libm functions CPython's math module calls (sqrt,
+ * exp, log1p, erfc, pow), compiled with -ffp-contract=off so no multiply-add is fused. The one call back into
+ * Python is the normal deviate of a stuck run's chance (tail_deviate, NormalDist.inv_cdf), which only a
+ * repeated value needs. tests/models/test_models_fast_paths.py compares every field of every Evidence with the
+ * Python method's, bit for bit, over streams with cycles, spikes, held values, repeats and stuck runs.
+ *
+ * The constants come from models.seasonal through configure() at import, so they have one home.
+ */
+#define PY_SSIZE_T_CLEAN
+#include <Python.h>
+#include <math.h>
+#include <stdint.h>
+#include <string.h>
+
+static struct {
+    double prefer_simpler, mad_to_sd, z_limit, stuck_prior_repeats, stuck_max_rate, stuck_prior_runs,
+        stuck_direct_rate, drift_clip, drift_lambda, drift_var0_prior, tail_prior_windows, gauss_rate_prior,
+        gauss_excess_prior, tail_prior_events, tail_level, sqrt2, hold_rate;
+    int ready;
+} K;
+
+/* The statistics compare reads, in this order (each a list, one entry per feature position). */
+static const char *const FLOAT_NAMES[] = {"level", "off_day", "off_week", "err0", "err1", "err2", "ew", "ew2",
+                                          "err1b", "dscale", "last", "rep", "repw", "rpend", "ez", "ez2", "ezw",
+                                          "rr", "rrw", "xr", "xw", "xn", "xe", "yr", "yw", "yn", "ye", "held"};
+enum {
+    F_LEVEL, F_OFF_D, F_OFF_W, F_ERR0, F_ERR1, F_ERR2, F_EW, F_EW2, F_ERR1B, F_DSCALE, F_LAST, F_REP, F_REPW,
+    F_RPEND, F_EZ, F_EZ2, F_EZW, F_RR, F_RRW, F_XR, F_XW, F_XN, F_XE, F_YR, F_YW, F_YN, F_YE, F_HELD, N_FLOATS
+};
+static const char *const INT_NAMES[] = {"count", "run", "away"};
+enum { I_COUNT, I_RUN, I_AWAY, N_INTS };
+
+static PyObject *float_keys[N_FLOATS], *int_keys[N_INTS];
+static PyObject *s_f, *s_i, *s_day, *s_day_n, *s_week, *s_week_n, *s_names, *s_absolute_floor,
+    *s_relative_floor, *s_count_name, *s_expected, *s_z, *s_change, *s_stuck, *s_scorable, *s_p, *s_drift,
+    *s_held;
+
+static int configure_from(PyObject *d) {
+#define GET(field, key)                                                     \
+    do {                                                                    \
+        PyObject *v = PyDict_GetItemString(d, key);                         \
+        if (v == NULL) {                                                    \
+            PyErr_Format(PyExc_KeyError, "configure: missing %s", key);     \
+            return -1;                                                      \
+        }                                                                   \
+        K.field = PyFloat_AsDouble(v);                                      \
+        if (K.field == -1.0 && PyErr_Occurred()) return -1;                 \
+    } while (0)
+    GET(prefer_simpler, "PREFER_SIMPLER");
+    GET(mad_to_sd, "MAD_TO_SD");
+    GET(z_limit, "Z_LIMIT");
+    GET(stuck_prior_repeats, "STUCK_PRIOR_REPEATS");
+    GET(stuck_max_rate, "STUCK_MAX_RATE");
+    GET(stuck_prior_runs, "STUCK_PRIOR_RUNS");
+    GET(stuck_direct_rate, "STUCK_DIRECT_RATE");
+    GET(drift_clip, "DRIFT_CLIP");
+    GET(drift_lambda, "DRIFT_LAMBDA");
+    GET(drift_var0_prior, "_DRIFT_VAR0_PRIOR");
+    GET(tail_prior_windows, "TAIL_PRIOR_WINDOWS");
+    GET(gauss_rate_prior, "_GAUSS_RATE_PRIOR");
+    GET(gauss_excess_prior, "_GAUSS_EXCESS_PRIOR");
+    GET(tail_prior_events, "TAIL_PRIOR_EVENTS");
+    GET(tail_level, "TAIL_LEVEL");
+    GET(sqrt2, "_SQRT2");
+    GET(hold_rate, "HOLD_RATE");
+#undef GET
+    K.ready = 1;
+    return 0;
+}
+
+static PyObject *configure(PyObject *module, PyObject *d) {
+    if (!PyDict_Check(d)) {
+        PyErr_SetString(PyExc_TypeError, "configure(constants: dict)");
+        return NULL;
+    }
+    if (configure_from(d) < 0) return NULL;
+    Py_RETURN_NONE;
+}
+
+static inline double as_double(PyObject *o) {
+    return PyFloat_CheckExact(o) ? PyFloat_AS_DOUBLE(o) : PyFloat_AsDouble(o);
+}
+
+/* Entry i of a list of floats (PyFloat_AsDouble sets an error for anything else). */
+#define FV(k, i) as_double(PyList_GET_ITEM(fl[k], (i)))
+
+/* A new Evidence without running its Python __init__: object.__new__, then each slot set. */
+static PyObject *evidence(PyObject *cls, double expected, double z, double change, double stuck, int scorable,
+                          double p, double drift, int held) {
+    PyTypeObject *type = (PyTypeObject *)cls;
+    PyObject *obj = type->tp_alloc(type, 0);
+    if (obj == NULL) return NULL;
+    PyObject *vals[8] = {PyFloat_FromDouble(expected), PyFloat_FromDouble(z), PyFloat_FromDouble(change),
+                         PyFloat_FromDouble(stuck), PyBool_FromLong(scorable), PyFloat_FromDouble(p),
+                         PyFloat_FromDouble(drift), PyBool_FromLong(held)};
+    PyObject *keys[8] = {s_expected, s_z, s_change, s_stuck, s_scorable, s_p, s_drift, s_held};
+    int failed = 0;
+    for (int k = 0; k < 8; k++) {
+        if (!failed && (vals[k] == NULL || PyObject_SetAttr(obj, keys[k], vals[k]) < 0)) failed = 1;
+        Py_XDECREF(vals[k]);
+    }
+    if (failed) {
+        Py_DECREF(obj);
+        return NULL;
+    }
+    return obj;
+}
+
+/* One entry of an array('d') or array('H') profile row. */
+static int read_row(PyObject *rows, Py_ssize_t i, Py_buffer *view, const char *fmt, Py_ssize_t width) {
+    PyObject *row = PyList_GET_ITEM(rows, i);
+    if (PyObject_GetBuffer(row, view, PyBUF_C_CONTIGUOUS | PyBUF_FORMAT) < 0) return -1;
+    if (strcmp(view->format ? view->format : "B", fmt) != 0 || view->len != width * view->itemsize) {
+        PyBuffer_Release(view);
+        PyErr_SetString(PyExc_ValueError, "malformed profile row");
+        return -1;
+    }
+    return 0;
+}
+
+/* compare(baseline, idx, values, use_day, use_week, blend, Evidence, tail_deviate) -> list of Evidence */
+static PyObject *compare(PyObject *module, PyObject *const *args, Py_ssize_t nargs) {
+    if (nargs != 8) {
+        PyErr_SetString(PyExc_TypeError, "compare(baseline, idx, values, use_day, use_week, blend, Evidence, tail_deviate)");
+        return NULL;
+    }
+    if (!K.ready) {
+        PyErr_SetString(PyExc_RuntimeError, "configure() first");
+        return NULL;
+    }
+    PyObject *base = args[0], *idx = args[1], *values = args[2], *blend = args[5], *ev_cls = args[6],
+             *tail_deviate = args[7];
+    int use_day = PyObject_IsTrue(args[3]), use_week = PyObject_IsTrue(args[4]);
+    if (use_day < 0 || use_week < 0) return NULL;
+    if (!PyList_CheckExact(idx) || !PyList_CheckExact(values) || PyList_GET_SIZE(idx) != PyList_GET_SIZE(values) ||
+        !PyTuple_CheckExact(blend) || PyTuple_GET_SIZE(blend) != 5 || !PyType_Check(ev_cls)) {
+        PyErr_SetString(PyExc_TypeError, "idx and values: lists of one length; blend: a 5-tuple; Evidence: a class");
+        return NULL;
+    }
+    Py_ssize_t hour = PyLong_AsSsize_t(PyTuple_GET_ITEM(blend, 0)), how = PyLong_AsSsize_t(PyTuple_GET_ITEM(blend, 1)),
+               nh = PyLong_AsSsize_t(PyTuple_GET_ITEM(blend, 2)), nw = PyLong_AsSsize_t(PyTuple_GET_ITEM(blend, 3));
+    double bw = PyFloat_AsDouble(PyTuple_GET_ITEM(blend, 4));
+    if (PyErr_Occurred()) return NULL;
+    if (hour < 0 || hour >= 24 || nh < 0 || nh >= 24 || how < 0 || how >= 168 || nw < 0 || nw >= 168) {
+        PyErr_SetString(PyExc_ValueError, "blend slots out of range");
+        return NULL;
+    }
+
+    PyObject *f = NULL, *ints = NULL, *day = NULL, *day_n = NULL, *week = NULL, *week_n = NULL, *names = NULL,
+             *out = NULL;
+    PyObject *fl[N_FLOATS], *il[N_INTS];
+    double floor_abs = 0.0, floor_rel = 0.0;
+    f = PyObject_GetAttr(base, s_f);
+    ints = f ? PyObject_GetAttr(base, s_i) : NULL;
+    day = ints ? PyObject_GetAttr(base, s_day) : NULL;
+    day_n = day ? PyObject_GetAttr(base, s_day_n) : NULL;
+    week = day_n ? PyObject_GetAttr(base, s_week) : NULL;
+    week_n = week ? PyObject_GetAttr(base, s_week_n) : NULL;
+    names = week_n ? PyObject_GetAttr(base, s_names) : NULL;
+    if (names == NULL) goto done;
+    {
+        PyObject *v = PyObject_GetAttr(base, s_absolute_floor);
+        if (v == NULL) goto done;
+        floor_abs = PyFloat_AsDouble(v);
+        Py_DECREF(v);
+        v = PyObject_GetAttr(base, s_relative_floor);
+        if (v == NULL) goto done;
+        floor_rel = PyFloat_AsDouble(v);
+        Py_DECREF(v);
+        if (PyErr_Occurred()) goto done;
+    }
+    if (!PyDict_Check(f) || !PyDict_Check(ints) || !PyList_CheckExact(day) || !PyList_CheckExact(day_n) ||
+        !PyList_CheckExact(week) || !PyList_CheckExact(week_n) || !PyList_CheckExact(names)) {
+        PyErr_SetString(PyExc_TypeError, "not a SeasonalBaseline");
+        goto done;
+    }
+    Py_ssize_t n_feat = PyList_GET_SIZE(names);
+    for (int k = 0; k < N_FLOATS; k++) {
+        fl[k] = PyDict_GetItemWithError(f, float_keys[k]);
+        if (fl[k] == NULL || !PyList_CheckExact(fl[k]) || PyList_GET_SIZE(fl[k]) != n_feat) {
+            if (!PyErr_Occurred()) PyErr_Format(PyExc_ValueError, "statistic %s missing or of the wrong length", FLOAT_NAMES[k]);
+            goto done;
+        }
+    }
+    for (int k = 0; k < N_INTS; k++) {
+        il[k] = PyDict_GetItemWithError(ints, int_keys[k]);
+        if (il[k] == NULL || !PyList_CheckExact(il[k]) || PyList_GET_SIZE(il[k]) != n_feat) {
+            if (!PyErr_Occurred()) PyErr_Format(PyExc_ValueError, "count %s missing or of the wrong length", INT_NAMES[k]);
+            goto done;
+        }
+    }
+    if (PyList_GET_SIZE(day) != n_feat || PyList_GET_SIZE(day_n) != n_feat || PyList_GET_SIZE(week) != n_feat ||
+        PyList_GET_SIZE(week_n) != n_feat) {
+        PyErr_SetString(PyExc_ValueError, "profiles of the wrong length");
+        goto done;
+    }
+
+    Py_ssize_t n = PyList_GET_SIZE(idx);
+    out = PyList_New(n);
+    if (out == NULL) goto done;
+    for (Py_ssize_t j = 0; j < n; j++) {
+        Py_ssize_t i = PyLong_AsSsize_t(PyList_GET_ITEM(idx, j));
+        if (i == -1 && PyErr_Occurred()) goto fail;
+        if (i < 0 || i >= n_feat) {
+            PyErr_SetString(PyExc_IndexError, "feature position out of range");
+            goto fail;
+        }
+        double x = as_double(PyList_GET_ITEM(values, j));
+        long count = PyLong_AsLong(PyList_GET_ITEM(il[I_COUNT], i));
+        if (PyErr_Occurred()) goto fail;
+        PyObject *e;
+        if (count == 0) {
+            e = evidence(ev_cls, NAN, 0.0, 0.0, 0.0, 0, 1.0, 0.0, 0);
+            if (e == NULL) goto fail;
+            PyList_SET_ITEM(out, j, e);
+            continue;
+        }
+        double p0 = FV(F_LEVEL, i);
+        double e1 = FV(F_ERR1, i);
+        double e1b = FV(F_ERR1B, i);
+        int smooth = e1b < e1;
+        if (smooth) e1 = e1b;
+        double p1, p2;
+        Py_buffer rv, rn;
+        if (use_day) {
+            if (read_row(day_n, i, &rn, "H", 24) < 0) goto fail;
+            const uint16_t *cnt = rn.buf;
+            int have = cnt[hour] != 0, have_next = cnt[nh] != 0;
+            PyBuffer_Release(&rn);
+            if (have) {
+                if (read_row(day, i, &rv, "d", 24) < 0) goto fail;
+                const double *row = rv.buf;
+                p1 = row[hour];
+                if (smooth && have_next) p1 += bw * (row[nh] - p1);
+                PyBuffer_Release(&rv);
+                p1 += FV(F_OFF_D, i);
+            } else {
+                p1 = p0;
+            }
+        } else {
+            p1 = p0;
+        }
+        if (use_week) {
+            if (read_row(week_n, i, &rn, "H", 168) < 0) goto fail;
+            const uint16_t *cnt = rn.buf;
+            int have = cnt[how] != 0, have_next = cnt[nw] != 0;
+            PyBuffer_Release(&rn);
+            if (have) {
+                if (read_row(week, i, &rv, "d", 168) < 0) goto fail;
+                const double *row = rv.buf;
+                p2 = row[how];
+                if (smooth && have_next) p2 += bw * (row[nw] - p2);
+                PyBuffer_Release(&rv);
+                p2 += FV(F_OFF_W, i);
+            } else {
+                p2 = p1;
+            }
+        } else {
+            p2 = p1;
+        }
+        double err = FV(F_ERR0, i);
+        double p = p0;
+        if (e1 < K.prefer_simpler * err) {
+            err = e1;
+            p = p1;
+        }
+        double e2 = FV(F_ERR2, i);
+        if (e2 < K.prefer_simpler * err) {
+            err = e2;
+            p = p2;
+        }
+        if (PyErr_Occurred()) goto fail;
+        if (count < 2) {
+            e = evidence(ev_cls, p, 0.0, 0.0, 0.0, 0, 1.0, 0.0, 0);
+            if (e == NULL) goto fail;
+            PyList_SET_ITEM(out, j, e);
+            continue;
+        }
+        double floor = floor_abs + floor_rel * fabs(p);
+        int is_count = PyUnicode_Check(PyList_GET_ITEM(names, i)) &&
+                       PyUnicode_CompareWithASCIIString(PyList_GET_ITEM(names, i), "count") == 0;
+        if (is_count) {
+            double root = sqrt(fabs(p));
+            if (root > floor) floor = root;
+        }
+        double sd = K.mad_to_sd * err;
+        if (floor > sd) sd = floor;
+        double ew = FV(F_EW, i);
+        double share = FV(F_EW2, i) / (ew * ew);
+        double t = (x - p) / sd;
+        t = t > K.z_limit ? K.z_limit : t < -K.z_limit ? -K.z_limit : t;
+        double z = 0.0;
+        if (share < 1.0) {
+            double tn = t / sqrt(1.0 + share);
+            double dof = 1.0 / share - 1.0;
+            if (!(dof <= 0.0)) {
+                z = (8.0 * dof + 1.0) / (8.0 * dof + 3.0) * sqrt(dof * log1p(tn * tn / dof));
+                if (!(tn >= 0.0)) z = -z;
+            }
+        }
+        double dsd = K.mad_to_sd * FV(F_DSCALE, i);
+        if (floor > dsd) dsd = floor;
+        double x_last = FV(F_LAST, i);
+        double c = (x - x_last) / dsd;
+        c = c > K.z_limit ? K.z_limit : c < -K.z_limit ? -K.z_limit : c;
+        double stuck = 0.0, p_stuck = 1.0, q = 1.0;
+        double rep = FV(F_REP, i), repw = FV(F_REPW, i), rpend = FV(F_RPEND, i);
+        if (PyErr_Occurred()) goto fail;
+        if (x == x_last) {
+            q = (rep + K.stuck_prior_repeats) / (repw + 1.0);
+            if ((rep + rpend + 0.5) / (repw + 1.0) < K.stuck_max_rate) {
+                double q2 = (FV(F_RR, i) + K.stuck_prior_runs * q) / (FV(F_RRW, i) + K.stuck_prior_runs);
+                long run = PyLong_AsLong(PyList_GET_ITEM(il[I_RUN], i));
+                if (PyErr_Occurred()) goto fail;
+                /* float ** int in CPython: 1.0 for a zero exponent, else libm pow of the two doubles */
+                p_stuck = q * (run == 0 ? 1.0 : pow(q2, (double)run));
+                PyObject *ps = PyFloat_FromDouble(p_stuck);
+                if (ps == NULL) goto fail;
+                PyObject *dev = PyObject_CallOneArg(tail_deviate, ps);
+                Py_DECREF(ps);
+                if (dev == NULL) goto fail;
+                stuck = PyFloat_AsDouble(dev);
+                Py_DECREF(dev);
+                if (stuck == -1.0 && PyErr_Occurred()) goto fail;
+            }
+        }
+        double zc = z > K.drift_clip ? K.drift_clip : z < -K.drift_clip ? -K.drift_clip : z;
+        double ez_i = FV(F_EZ, i);
+        double drift = (ez_i + K.drift_lambda * (zc - ez_i)) /
+                       sqrt((FV(F_EZ2, i) + K.drift_var0_prior) / (FV(F_EZW, i) + K.tail_prior_windows));
+        double rate_x = (FV(F_XR, i) + K.gauss_rate_prior) / (FV(F_XW, i) + K.tail_prior_windows);
+        double beta_x = (FV(F_XE, i) + K.gauss_excess_prior) / (FV(F_XN, i) + K.tail_prior_events);
+        double gauss, over, tail;
+        if (stuck > 0.0 && q >= K.stuck_direct_rate) {
+            gauss = erfc(stuck / K.sqrt2);
+            over = stuck - K.tail_level;
+            tail = rate_x * exp(-(over > 0.0 ? over : 0.0) / beta_x);
+            p_stuck = tail > gauss ? tail : gauss;
+        }
+        double strength = fabs(z);
+        gauss = erfc(strength / K.sqrt2);
+        over = strength - K.tail_level;
+        tail = rate_x * exp(-(over > 0.0 ? over : 0.0) / beta_x);
+        double p_z = tail > gauss ? tail : gauss;
+        strength = fabs(drift);
+        gauss = erfc(strength / K.sqrt2);
+        over = strength - K.tail_level;
+        tail = ((FV(F_YR, i) + K.gauss_rate_prior) / (FV(F_YW, i) + K.tail_prior_windows)) *
+               exp(-(over > 0.0 ? over : 0.0) / ((FV(F_YE, i) + K.gauss_excess_prior) / (FV(F_YN, i) + K.tail_prior_events)));
+        double p_d = 2.0 * (tail > gauss ? tail : gauss);
+        double p_ev = p_z;
+        if (p_d < p_ev) p_ev = p_d;
+        if (p_stuck < p_ev) p_ev = p_stuck;
+        int is_held = 0;
+        if (!is_count) {
+            double q_hold = (rep + rpend + 0.5) / (repw + 1.0);
+            double held = FV(F_HELD, i);
+            long away_n = PyLong_AsLong(PyList_GET_ITEM(il[I_AWAY], i));
+            if (PyErr_Occurred()) goto fail;
+            long away = (x == held || x == x_last) ? 0 : away_n + 1;
+            if (q_hold >= K.hold_rate && away <= 1) {
+                double held_p = 1.0 - q_hold;
+                if (held_p > p_ev) p_ev = held_p;
+                is_held = 1;
+            }
+        }
+        if (PyErr_Occurred()) goto fail;
+        e = evidence(ev_cls, p, z, c, stuck, 1, p_ev, drift, is_held);
+        if (e == NULL) goto fail;
+        PyList_SET_ITEM(out, j, e);
+    }
+    goto done;
+fail:
+    Py_CLEAR(out);
+done:
+    Py_XDECREF(f);
+    Py_XDECREF(ints);
+    Py_XDECREF(day);
+    Py_XDECREF(day_n);
+    Py_XDECREF(week);
+    Py_XDECREF(week_n);
+    Py_XDECREF(names);
+    return out;
+}
+
+static PyMethodDef baselinecore_functions[] = {
+    {"configure", configure, METH_O, "configure(constants): the constants of models.seasonal, once at import."},
+    {"compare", (PyCFunction)(void (*)(void))compare, METH_FASTCALL,
+     "compare(baseline, idx, values, use_day, use_week, blend, Evidence, tail_deviate): "
+     "SeasonalBaseline.compare's list of Evidence."},
+    {NULL, NULL, 0, NULL},
+};
+
+static struct PyModuleDef baselinecore_module = {
+    PyModuleDef_HEAD_INIT, "models._baselinecore",
+    "SeasonalBaseline.compare as a C loop (used by models.seasonal where installed).\n"
+    "\n"
+    "It reads a baseline's statistics in place and returns the same Evidence as the Python method\n"
+    "(SeasonalBaseline._compare):\n"
+    "\n"
+    ">>> from models.seasonal import SeasonalBaseline\n"
+    ">>> from models import _baselinecore\n"
+    ">>> base = SeasonalBaseline(24.0)\n"
+    ">>> for k in range(50):\n"
+    "...     base.learn_one({\"x\": 10.0 + k % 3})\n"
+    ">>> idx = base.locate([\"x\"])\n"
+    ">>> ev = base.compare(idx, [30.0], None)[0]\n"
+    ">>> ev.scorable, round(ev.expected, 2), ev.z > 10\n"
+    "(True, 10.98, True)\n"
+    ">>> base.compare(idx, [30.0], None) == base._compare(idx, [30.0], None)\n"
+    "True\n",
+    -1, baselinecore_functions,
+};
+
+PyMODINIT_FUNC PyInit__baselinecore(void) {
+    for (int k = 0; k < N_FLOATS; k++)
+        if ((float_keys[k] = PyUnicode_InternFromString(FLOAT_NAMES[k])) == NULL) return NULL;
+    for (int k = 0; k < N_INTS; k++)
+        if ((int_keys[k] = PyUnicode_InternFromString(INT_NAMES[k])) == NULL) return NULL;
+#define NAME(var, text) \
+    if ((var = PyUnicode_InternFromString(text)) == NULL) return NULL;
+    NAME(s_f, "_f")
+    NAME(s_i, "_i")
+    NAME(s_day, "_day")
+    NAME(s_day_n, "_day_n")
+    NAME(s_week, "_week")
+    NAME(s_week_n, "_week_n")
+    NAME(s_names, "_names")
+    NAME(s_absolute_floor, "absolute_floor")
+    NAME(s_relative_floor, "relative_floor")
+    NAME(s_count_name, "count")
+    NAME(s_expected, "expected")
+    NAME(s_z, "z")
+    NAME(s_change, "change")
+    NAME(s_stuck, "stuck")
+    NAME(s_scorable, "scorable")
+    NAME(s_p, "p")
+    NAME(s_drift, "drift")
+    NAME(s_held, "held")
+#undef NAME
+    return PyModule_Create(&baselinecore_module);
+}
