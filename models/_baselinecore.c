@@ -387,11 +387,275 @@ done:
     return out;
 }
 
+/* The statistics update_loop writes, in this order. */
+static const char *const UPDATE_NAMES[] = {"level", "lw", "off_day", "off_week", "err0", "err1", "err2", "err1b",
+                                           "ew", "ew2", "dscale", "dw", "rep", "repw", "rr", "rrw", "rpend",
+                                           "last", "held"};
+enum {
+    U_LEVEL, U_LW, U_OFF_D, U_OFF_W, U_ERR0, U_ERR1, U_ERR2, U_ERR1B, U_EW, U_EW2, U_DSCALE, U_DW, U_REP, U_REPW,
+    U_RR, U_RRW, U_RPEND, U_LAST, U_HELD, N_UPDATE
+};
+static PyObject *update_keys[N_UPDATE];
+
+#define UV(k, i) as_double(PyList_GET_ITEM(ul[k], (i)))
+
+static inline int set_float(PyObject *list, Py_ssize_t i, double v) {
+    PyObject *o = PyFloat_FromDouble(v);
+    if (o == NULL) return -1;
+    return PyList_SetItem(list, i, o); /* steals o, releases the old entry */
+}
+
+static inline int set_long(PyObject *list, Py_ssize_t i, long v) {
+    PyObject *o = PyLong_FromLong(v);
+    if (o == NULL) return -1;
+    return PyList_SetItem(list, i, o);
+}
+
+static int row_buffer(PyObject *rows, Py_ssize_t i, Py_buffer *view, const char *fmt, Py_ssize_t width) {
+    PyObject *row = PyList_GET_ITEM(rows, i);
+    if (PyObject_GetBuffer(row, view, PyBUF_C_CONTIGUOUS | PyBUF_FORMAT | PyBUF_WRITABLE) < 0) return -1;
+    if (strcmp(view->format ? view->format : "B", fmt) != 0 || view->len != width * view->itemsize) {
+        PyBuffer_Release(view);
+        PyErr_SetString(PyExc_ValueError, "malformed profile row");
+        return -1;
+    }
+    return 0;
+}
+
+/* update_loop(baseline, idx, values, timed, use_day, use_week, blend, a, keep, ks, kr, a_day, a_week): the
+ * learning loop of SeasonalBaseline.update (the part after the tails and the drift), in place. */
+static PyObject *update_loop(PyObject *module, PyObject *const *args, Py_ssize_t nargs) {
+    if (nargs != 13) {
+        PyErr_SetString(PyExc_TypeError,
+                        "update_loop(baseline, idx, values, timed, use_day, use_week, blend, a, keep, ks, kr, a_day, a_week)");
+        return NULL;
+    }
+    PyObject *base = args[0], *idx = args[1], *values = args[2], *blend = args[6];
+    int timed = PyObject_IsTrue(args[3]), use_day = PyObject_IsTrue(args[4]), use_week = PyObject_IsTrue(args[5]);
+    double a = PyFloat_AsDouble(args[7]), keep = PyFloat_AsDouble(args[8]), ks = PyFloat_AsDouble(args[9]),
+           kr = PyFloat_AsDouble(args[10]), a_day = PyFloat_AsDouble(args[11]), a_week = PyFloat_AsDouble(args[12]);
+    if (timed < 0 || use_day < 0 || use_week < 0 || PyErr_Occurred()) return NULL;
+    if (!PyList_CheckExact(idx) || !PyList_CheckExact(values) || PyList_GET_SIZE(idx) != PyList_GET_SIZE(values) ||
+        !PyTuple_CheckExact(blend) || PyTuple_GET_SIZE(blend) != 5) {
+        PyErr_SetString(PyExc_TypeError, "idx and values: lists of one length; blend: a 5-tuple");
+        return NULL;
+    }
+    Py_ssize_t hour = PyLong_AsSsize_t(PyTuple_GET_ITEM(blend, 0)), how = PyLong_AsSsize_t(PyTuple_GET_ITEM(blend, 1)),
+               nh = PyLong_AsSsize_t(PyTuple_GET_ITEM(blend, 2)), nw = PyLong_AsSsize_t(PyTuple_GET_ITEM(blend, 3));
+    double bw = PyFloat_AsDouble(PyTuple_GET_ITEM(blend, 4));
+    if (PyErr_Occurred()) return NULL;
+    if (hour < 0 || hour >= 24 || nh < 0 || nh >= 24 || how < 0 || how >= 168 || nw < 0 || nw >= 168) {
+        PyErr_SetString(PyExc_ValueError, "blend slots out of range");
+        return NULL;
+    }
+    PyObject *f = NULL, *ints = NULL, *day = NULL, *day_n = NULL, *week = NULL, *week_n = NULL, *names = NULL,
+             *result = NULL;
+    PyObject *ul[N_UPDATE], *il[N_INTS];
+    f = PyObject_GetAttr(base, s_f);
+    ints = f ? PyObject_GetAttr(base, s_i) : NULL;
+    day = ints ? PyObject_GetAttr(base, s_day) : NULL;
+    day_n = day ? PyObject_GetAttr(base, s_day_n) : NULL;
+    week = day_n ? PyObject_GetAttr(base, s_week) : NULL;
+    week_n = week ? PyObject_GetAttr(base, s_week_n) : NULL;
+    names = week_n ? PyObject_GetAttr(base, s_names) : NULL;
+    if (names == NULL) goto done;
+    if (!PyDict_Check(f) || !PyDict_Check(ints) || !PyList_CheckExact(day) || !PyList_CheckExact(day_n) ||
+        !PyList_CheckExact(week) || !PyList_CheckExact(week_n) || !PyList_CheckExact(names)) {
+        PyErr_SetString(PyExc_TypeError, "not a SeasonalBaseline");
+        goto done;
+    }
+    Py_ssize_t n_feat = PyList_GET_SIZE(names);
+    for (int k = 0; k < N_UPDATE; k++) {
+        ul[k] = PyDict_GetItemWithError(f, update_keys[k]);
+        if (ul[k] == NULL || !PyList_CheckExact(ul[k]) || PyList_GET_SIZE(ul[k]) != n_feat) {
+            if (!PyErr_Occurred()) PyErr_Format(PyExc_ValueError, "statistic %s missing or of the wrong length", UPDATE_NAMES[k]);
+            goto done;
+        }
+    }
+    for (int k = 0; k < N_INTS; k++) {
+        il[k] = PyDict_GetItemWithError(ints, int_keys[k]);
+        if (il[k] == NULL || !PyList_CheckExact(il[k]) || PyList_GET_SIZE(il[k]) != n_feat) {
+            if (!PyErr_Occurred()) PyErr_Format(PyExc_ValueError, "count %s missing or of the wrong length", INT_NAMES[k]);
+            goto done;
+        }
+    }
+    if (PyList_GET_SIZE(day) != n_feat || PyList_GET_SIZE(day_n) != n_feat || PyList_GET_SIZE(week) != n_feat ||
+        PyList_GET_SIZE(week_n) != n_feat) {
+        PyErr_SetString(PyExc_ValueError, "profiles of the wrong length");
+        goto done;
+    }
+    const double ks2 = ks * ks;
+    Py_ssize_t n = PyList_GET_SIZE(idx);
+    for (Py_ssize_t j = 0; j < n; j++) {
+        Py_ssize_t i = PyLong_AsSsize_t(PyList_GET_ITEM(idx, j));
+        if (i == -1 && PyErr_Occurred()) goto done;
+        if (i < 0 || i >= n_feat) {
+            PyErr_SetString(PyExc_IndexError, "feature position out of range");
+            goto done;
+        }
+        PyObject *xo = PyList_GET_ITEM(values, j);
+        double x = as_double(xo);
+        long count = PyLong_AsLong(PyList_GET_ITEM(il[I_COUNT], i));
+        if (PyErr_Occurred()) goto done;
+        Py_buffer dv, dn, wv, wn;
+        if (count == 0) {
+            if (set_float(ul[U_LEVEL], i, x) < 0 || set_float(ul[U_LW], i, 1.0) < 0 || set_float(ul[U_LAST], i, x) < 0 ||
+                set_float(ul[U_HELD], i, x) < 0)
+                goto done;
+            if (timed) {
+                if (row_buffer(day, i, &dv, "d", 24) < 0) goto done;
+                ((double *)dv.buf)[hour] = x;
+                PyBuffer_Release(&dv);
+                if (row_buffer(day_n, i, &dn, "H", 24) < 0) goto done;
+                ((uint16_t *)dn.buf)[hour] = 1;
+                PyBuffer_Release(&dn);
+                if (row_buffer(week, i, &wv, "d", 168) < 0) goto done;
+                ((double *)wv.buf)[how] = x;
+                PyBuffer_Release(&wv);
+                if (row_buffer(week_n, i, &wn, "H", 168) < 0) goto done;
+                ((uint16_t *)wn.buf)[how] = 1;
+                PyBuffer_Release(&wn);
+            }
+            if (set_long(il[I_COUNT], i, 1) < 0) goto done;
+            continue;
+        }
+        if (row_buffer(day, i, &dv, "d", 24) < 0) goto done;
+        if (row_buffer(day_n, i, &dn, "H", 24) < 0) {
+            PyBuffer_Release(&dv);
+            goto done;
+        }
+        if (row_buffer(week, i, &wv, "d", 168) < 0) {
+            PyBuffer_Release(&dv);
+            PyBuffer_Release(&dn);
+            goto done;
+        }
+        if (row_buffer(week_n, i, &wn, "H", 168) < 0) {
+            PyBuffer_Release(&dv);
+            PyBuffer_Release(&dn);
+            PyBuffer_Release(&wv);
+            goto done;
+        }
+        double *drow = dv.buf, *wrow = wv.buf;
+        uint16_t *dcnt = dn.buf, *wcnt = wn.buf;
+        int failed = 0;
+        double p0 = UV(U_LEVEL, i);
+        int smooth = UV(U_ERR1B, i) < UV(U_ERR1, i);
+        double s1, b1, p1, p2;
+        if (use_day && dcnt[hour]) {
+            s1 = b1 = drow[hour];
+            if (dcnt[nh]) b1 = s1 + bw * (drow[nh] - s1);
+            double off = UV(U_OFF_D, i);
+            s1 += off;
+            b1 += off;
+        } else {
+            s1 = b1 = p0;
+        }
+        p1 = smooth ? b1 : s1;
+        if (use_week && wcnt[how]) {
+            p2 = wrow[how];
+            if (smooth && wcnt[nw]) p2 += bw * (wrow[nw] - p2);
+            p2 += UV(U_OFF_W, i);
+        } else {
+            p2 = p1;
+        }
+        double w = ks * UV(U_EW, i) + 1.0;
+        double err0 = UV(U_ERR0, i), err1 = UV(U_ERR1, i), err1b = UV(U_ERR1B, i), err2 = UV(U_ERR2, i);
+        double ew2 = UV(U_EW2, i), dw = UV(U_DW, i), dscale = UV(U_DSCALE, i), x_last = UV(U_LAST, i);
+        double rep = UV(U_REP, i), rpend = UV(U_RPEND, i), repw = UV(U_REPW, i);
+        double lw = UV(U_LW, i), level = p0, held = UV(U_HELD, i);
+        long run = PyLong_AsLong(PyList_GET_ITEM(il[I_RUN], i));
+        long away = PyLong_AsLong(PyList_GET_ITEM(il[I_AWAY], i));
+        if (PyErr_Occurred()) failed = 1;
+        if (!failed) {
+            err0 += (fabs(x - p0) - err0) / w;
+            err1 += (fabs(x - s1) - err1) / w;
+            err1b += (fabs(x - b1) - err1b) / w;
+            err2 += (fabs(x - p2) - err2) / w;
+            ew2 = ks2 * ew2 + 1.0;
+            double wd = ks * dw + 1.0;
+            dscale += (fabs(x - x_last) - dscale) / wd;
+            double same = x == x_last ? 1.0 : 0.0;
+            rep = kr * rep;
+            rpend = kr * rpend + same;
+            repw = kr * repw + 1.0;
+            if (!same) {
+                rep += rpend;
+                rpend = 0.0;
+            }
+            if (run > 0 && !same) {
+                /* A run of `run` repeats has ended (see SeasonalBaseline.update). */
+                double rr = kr * UV(U_RR, i) + (double)(run - 1);
+                double rrw = kr * UV(U_RRW, i) + (double)run;
+                failed = set_float(ul[U_RR], i, rr) < 0 || set_float(ul[U_RRW], i, rrw) < 0;
+            }
+            run = same ? run + 1 : 0;
+            if (same) held = x;
+            away = x == held ? 0 : away + 1;
+            double wl = keep * lw + 1.0;
+            level += (x - level) / wl;
+            failed = failed || set_float(ul[U_ERR0], i, err0) < 0 || set_float(ul[U_ERR1], i, err1) < 0 ||
+                     set_float(ul[U_ERR1B], i, err1b) < 0 || set_float(ul[U_ERR2], i, err2) < 0 ||
+                     set_float(ul[U_EW], i, w) < 0 || set_float(ul[U_EW2], i, ew2) < 0 ||
+                     set_float(ul[U_DSCALE], i, dscale) < 0 || set_float(ul[U_DW], i, wd) < 0 ||
+                     set_float(ul[U_REP], i, rep) < 0 || set_float(ul[U_RPEND], i, rpend) < 0 ||
+                     set_float(ul[U_REPW], i, repw) < 0 || set_long(il[I_RUN], i, run) < 0 ||
+                     set_float(ul[U_HELD], i, held) < 0 || set_long(il[I_AWAY], i, away) < 0 ||
+                     set_float(ul[U_LAST], i, x) < 0 || set_float(ul[U_LEVEL], i, level) < 0 ||
+                     set_float(ul[U_LW], i, wl) < 0;
+            if (!failed && timed) {
+                /* Offsets follow the level's pace; each slot keeps a slowly forgetting mean. */
+                unsigned nd = dcnt[hour];
+                if (nd) {
+                    double off = UV(U_OFF_D, i);
+                    off += a * ((x - drow[hour]) - off);
+                    failed = set_float(ul[U_OFF_D], i, off) < 0;
+                    double rate = 1.0 / (double)(nd + 1);
+                    drow[hour] += (rate > a_day ? rate : a_day) * (x - drow[hour]);
+                } else {
+                    drow[hour] = x;
+                }
+                dcnt[hour] = (uint16_t)(nd < 65535 ? nd + 1 : 65535);
+                unsigned seen = wcnt[how];
+                if (seen) {
+                    double off = UV(U_OFF_W, i);
+                    off += a * ((x - wrow[how]) - off);
+                    failed = failed || set_float(ul[U_OFF_W], i, off) < 0;
+                    double rate = 1.0 / (double)(seen + 1);
+                    wrow[how] += (rate > a_week ? rate : a_week) * (x - wrow[how]);
+                } else {
+                    wrow[how] = x;
+                }
+                wcnt[how] = (uint16_t)(seen < 65535 ? seen + 1 : 65535);
+            }
+            if (!failed) failed = set_long(il[I_COUNT], i, count + 1) < 0;
+        }
+        PyBuffer_Release(&dv);
+        PyBuffer_Release(&dn);
+        PyBuffer_Release(&wv);
+        PyBuffer_Release(&wn);
+        if (failed || PyErr_Occurred()) goto done;
+    }
+    result = Py_None;
+    Py_INCREF(result);
+done:
+    Py_XDECREF(f);
+    Py_XDECREF(ints);
+    Py_XDECREF(day);
+    Py_XDECREF(day_n);
+    Py_XDECREF(week);
+    Py_XDECREF(week_n);
+    Py_XDECREF(names);
+    return result;
+}
+
 static PyMethodDef baselinecore_functions[] = {
     {"configure", configure, METH_O, "configure(constants): the constants of models.seasonal, once at import."},
     {"compare", (PyCFunction)(void (*)(void))compare, METH_FASTCALL,
      "compare(baseline, idx, values, use_day, use_week, blend, Evidence, tail_deviate): "
      "SeasonalBaseline.compare's list of Evidence."},
+    {"update_loop", (PyCFunction)(void (*)(void))update_loop, METH_FASTCALL,
+     "update_loop(baseline, idx, values, timed, use_day, use_week, blend, a, keep, ks, kr, a_day, a_week): "
+     "the learning loop of SeasonalBaseline.update, in place."},
     {NULL, NULL, 0, NULL},
 };
 
@@ -421,6 +685,8 @@ PyMODINIT_FUNC PyInit__baselinecore(void) {
         if ((float_keys[k] = PyUnicode_InternFromString(FLOAT_NAMES[k])) == NULL) return NULL;
     for (int k = 0; k < N_INTS; k++)
         if ((int_keys[k] = PyUnicode_InternFromString(INT_NAMES[k])) == NULL) return NULL;
+    for (int k = 0; k < N_UPDATE; k++)
+        if ((update_keys[k] = PyUnicode_InternFromString(UPDATE_NAMES[k])) == NULL) return NULL;
 #define NAME(var, text) \
     if ((var = PyUnicode_InternFromString(text)) == NULL) return NULL;
     NAME(s_f, "_f")

@@ -190,15 +190,15 @@ _GAUSS_RATE_PRIOR = GAUSS_RATE * TAIL_PRIOR_WINDOWS
 _GAUSS_EXCESS_PRIOR = GAUSS_EXCESS * TAIL_PRIOR_EVENTS
 
 try:
-    # SeasonalBaseline.compare as a C loop (models/_baselinecore.c): the same evidence bit for bit, from the
-    # same statistics read in place; absent where the install had no C compiler, off with
+    # SeasonalBaseline.compare and the learning loop of update as C loops (models/_baselinecore.c): the same
+    # evidence and statistics bit for bit, read and written in place; absent where the install had no C compiler, off with
     # TIDEWATCH_PURE_PYTHON=1. Its constants are these, handed over once.
     from models import _baselinecore
 except ImportError:  # pragma: no cover - depends on the install
     _baselinecore = None
 if os.environ.get("TIDEWATCH_PURE_PYTHON", "") not in ("", "0"):
     _baselinecore = None
-_c_compare = None
+_c_compare = _c_update_loop = None
 if _baselinecore is not None:
     _baselinecore.configure({
         "PREFER_SIMPLER": PREFER_SIMPLER, "MAD_TO_SD": MAD_TO_SD, "Z_LIMIT": Z_LIMIT,
@@ -209,6 +209,7 @@ if _baselinecore is not None:
         "TAIL_PRIOR_EVENTS": TAIL_PRIOR_EVENTS, "TAIL_LEVEL": TAIL_LEVEL, "_SQRT2": _SQRT2, "HOLD_RATE": HOLD_RATE,
     })
     _c_compare = _baselinecore.compare
+    _c_update_loop = _baselinecore.update_loop
 
 
 def slots_of(at: float) -> tuple[int, int]:
@@ -743,6 +744,11 @@ class SeasonalBaseline:
         rr, rrw, rpend = f["rr"], f["rrw"], f["rpend"]
         count = ints["count"]
         day, day_n, week, week_n = self._day, self._day_n, self._week, self._week_n
+        if _c_update_loop is not None and type(idx) is list and type(values) is list:
+            # The loop below in C (models/_baselinecore.c), the same statistics bit for bit.
+            _c_update_loop(self, idx, values, at is not None, use_day, use_week, (hour, how, nh, nw, bw),
+                           a, keep, ks, kr, a_day, a_week)
+            return
         for i, x in zip(idx, values):
             n = count[i]
             if n == 0:

@@ -171,3 +171,36 @@ def test_fifteen_weeks_of_five_minute_windows_run_through() -> None:
         idx = base.locate(names, add=True)
         base.update(idx, values, at, evidence=base.compare(idx, values, at))
     assert min(base._week_n[0]) >= 15 * 12 - 12
+
+
+def _state_bytes(base: SeasonalBaseline) -> dict:
+    return {k: (v.tobytes() if isinstance(v, np.ndarray) else v) for k, v in base.to_state().items()}
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2])
+@pytest.mark.parametrize("timed", [True, False])
+def test_the_c_update_learns_the_python_update_s_statistics_bit_for_bit(seed: int, timed: bool, monkeypatch) -> None:
+    from models import seasonal
+
+    if seasonal._c_update_loop is None:
+        pytest.skip("built without the C extension")
+    c_loop = seasonal._c_update_loop
+    fast, slow = SeasonalBaseline(24.0), SeasonalBaseline(24.0)
+    rng = np.random.default_rng(seed)
+    for k, feats in enumerate(stream(seed, 21 * 288)):
+        at = T0 + STEP * k if timed else None
+        names = list(feats)
+        if rng.random() < 0.1:
+            names.pop(int(rng.integers(0, len(names))))
+        if k == 3000:
+            names.append("late.mean")  # a feature first seen after the profiles are in use
+            feats["late.mean"] = float(rng.standard_normal())
+        values = [feats[n] for n in names]
+        learn = rng.random() > 0.05
+        for base, loop in ((fast, c_loop), (slow, None)):
+            monkeypatch.setattr(seasonal, "_c_update_loop", loop)
+            idx = base.locate(names, add=True)
+            base.update(idx, values, at, learn=learn, evidence=base.compare(idx, values, at))
+        if k % 997 == 0:
+            assert _state_bytes(fast) == _state_bytes(slow), k
+    assert _state_bytes(fast) == _state_bytes(slow)
