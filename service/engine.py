@@ -11,6 +11,7 @@ import time
 from collections.abc import Callable, Sequence
 from typing import Any
 
+import logging
 import os
 
 from service.config import Config
@@ -33,6 +34,8 @@ if os.environ.get("TIDEWATCH_PURE_PYTHON", "") not in ("", "0"):
 
 #: Whether this process feeds batches through the C hot path.
 HOT_PATH = _Scanner is not None
+
+log = logging.getLogger("tidewatch.engine")
 
 __all__ = ["Engine", "ScoreSink", "RejectSink", "HOT_PATH"]
 
@@ -86,6 +89,7 @@ class Engine:
         self.owner: dict[str, SourceWindows] = {}
         self._scanner = (_Scanner(min_event_ts=MIN_EVENT_TS, ms_threshold=MS_THRESHOLD)
                          if _Scanner is not None else None)
+        self._failures_logged: set[str] = set()  # services whose model failure was logged (once each)
 
     def source(self, source_id: str) -> SourceWindows:
         src = self.sources.get(source_id)
@@ -254,6 +258,26 @@ class Engine:
         self.stats.accepted += accepted
         self.stats.services_tracked = len(owner)
 
+    def _model_failed(self, service: str, window: Window, exc: Exception) -> None:
+        """A model raised while scoring a window: count it, say so, and start the service afresh.
+
+        Without this, one service's broken model would stop every other service's scoring, and a
+        restart would meet the same model and the same error again. The window gets no score (a
+        made-up one would be worse); the service's model is dropped, so its next window starts a
+        fresh one (warming up again) and the first checkpoint or commit after that replaces the
+        saved state. Counted as ``tidewatch_model_failures_total``; logged at most once per service
+        and process, with the error.
+        """
+        stats = self.stats
+        stats.model_failures += 1
+        self.registry.drop(service)
+        logged = self._failures_logged
+        if service not in logged and len(logged) < 10_000:
+            logged.add(service)
+            log.error("a model failed to score a window; the service starts a fresh model",
+                      extra={"event": "model_failed", "service": service, "window_start": window.start,
+                             "error": f"{type(exc).__name__}: {exc}"}, exc_info=exc)
+
     def flush(self, src: SourceWindows) -> None:
         """Close every open window of a source (end of a finite input)."""
         self.close(src.pop_closed(flush=True))
@@ -267,7 +291,11 @@ class Engine:
             settings = registry.settings(service)
             model = registry.model(service, owner)
             features = window_features(window, settings.features)
-            assessment = model.assess(features, at=window.start)
+            try:
+                assessment = model.assess(features, at=window.start)
+            except Exception as exc:  # noqa: BLE001 - one service's model must not stop the fleet's scoring
+                self._model_failed(service, window, exc)
+                continue
             registry.dirty.add(service)
             payload = encode_score(
                 service, window.start, window.end, window.count, model.kind, model.settings.threshold, assessment

@@ -20,6 +20,7 @@ Metric names (all prefixed ``tidewatch_``; counters end in ``_total``, units in 
 ``models_spilled``                        models in the spill store now
 ``spill_store_bytes``                     bytes of the records in the spill store
 ``models_created_total``                  models created on first sight of a service
+``model_failures_total``                  windows whose model raised: not scored, the service's model started afresh
 ``services_tracked``                      services tracked (bounded by limits.max_services)
 ``models_restored_total``                 models restored from saved state
 ``state_records_refused_total{kind}``     saved records refused (corrupt, newer format, bad signature)
@@ -118,6 +119,9 @@ class RuntimeCollector(Collector):
         yield GaugeMetricFamily(P + "services_tracked", "Services this process tracks (windows or a model).",
                                 value=s.services_tracked)
         yield CounterMetricFamily(P + "models_created", "Models created on first sight of a service.", value=s.models_created)
+        yield CounterMetricFamily(P + "model_failures",
+                                  "Windows whose model raised: not scored, and the service's model started afresh.",
+                                  value=s.model_failures)
         yield CounterMetricFamily(P + "models_restored", "Models restored from saved state.", value=s.models_restored)
         m = CounterMetricFamily(P + "state_records_refused", "Saved state records refused, by kind.", labels=["kind"])
         for kind, n in sorted(s.state_records_refused.copy().items()):

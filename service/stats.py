@@ -53,6 +53,7 @@ class RuntimeStats:
         self.windows_closed = 0
         self.windows_flagged = 0
         self.models_created = 0
+        self.model_failures = 0  # windows whose model raised (service.engine.Engine._model_failed)
         self.services_tracked = 0  # set by the engine after each batch
         self.models_restored = 0
         # live-model limit and eviction (service.registry)

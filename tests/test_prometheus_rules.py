@@ -120,6 +120,8 @@ MUTATIONS = [
     ("TidewatchRejectsRising", "> 0.05", "> 0.005"),
     # one old failure would keep warning long after saves recovered
     ("TidewatchStateSavesFailing", "[15m]", "[45m]"),
+    # one old model failure would keep warning for hours
+    ("TidewatchModelFailures", "[30m]", "[2h]"),
     # intermittent failures with successful saves in between would be critical
     ("TidewatchStateNotSaved", "unless increase(tidewatch_state_saves_total[30m]) > 0", ""),
     # an idle instance would fire
