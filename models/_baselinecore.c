@@ -122,6 +122,103 @@ static int read_row(PyObject *rows, Py_ssize_t i, Py_buffer *view, const char *f
     return 0;
 }
 
+
+/* (hour, how, next_hour, next_how, w) from models.seasonal.blend_of, checked. */
+static int parse_blend(PyObject *blend, Py_ssize_t *hour, Py_ssize_t *how, Py_ssize_t *nh, Py_ssize_t *nw, double *bw) {
+    *hour = PyLong_AsSsize_t(PyTuple_GET_ITEM(blend, 0));
+    *how = PyLong_AsSsize_t(PyTuple_GET_ITEM(blend, 1));
+    *nh = PyLong_AsSsize_t(PyTuple_GET_ITEM(blend, 2));
+    *nw = PyLong_AsSsize_t(PyTuple_GET_ITEM(blend, 3));
+    *bw = PyFloat_AsDouble(PyTuple_GET_ITEM(blend, 4));
+    if (PyErr_Occurred()) return -1;
+    if (*hour < 0 || *hour >= 24 || *nh < 0 || *nh >= 24 || *how < 0 || *how >= 168 || *nw < 0 || *nw >= 168) {
+        PyErr_SetString(PyExc_ValueError, "blend slots out of range");
+        return -1;
+    }
+    return 0;
+}
+
+/* A profile's prediction for feature i at `slot`: the slot's mean, drawn toward the neighbouring slot `next`
+ * by bw where `smooth` and that slot has been seen, plus the profile's offset. *out is left as it is (the
+ * simpler prediction) when the slot has not been seen. */
+static int profile_predict(PyObject *rows, PyObject *counts, Py_ssize_t i, Py_ssize_t width, Py_ssize_t slot,
+                           Py_ssize_t next, int smooth, double bw, PyObject *offset, double *out) {
+    Py_buffer rn, rv;
+    if (read_row(counts, i, &rn, "H", width) < 0) return -1;
+    const uint16_t *cnt = rn.buf;
+    int have = cnt[slot] != 0, have_next = cnt[next] != 0;
+    PyBuffer_Release(&rn);
+    if (!have) return 0;
+    if (read_row(rows, i, &rv, "d", width) < 0) return -1;
+    const double *row = rv.buf;
+    double p = row[slot];
+    if (smooth && have_next) p += bw * (row[next] - p);
+    PyBuffer_Release(&rv);
+    double off = as_double(offset);
+    if (off == -1.0 && PyErr_Occurred()) return -1;
+    *out = p + off;
+    return 0;
+}
+
+/* A baseline's statistics, borrowed for one call: the dicts of lists and the profile rows, checked for
+ * type and length once. */
+typedef struct {
+    PyObject *f, *ints, *day, *day_n, *week, *week_n, *names; /* new references */
+    Py_ssize_t n_feat;
+} Baseline;
+
+static void baseline_release(Baseline *b) {
+    Py_CLEAR(b->f);
+    Py_CLEAR(b->ints);
+    Py_CLEAR(b->day);
+    Py_CLEAR(b->day_n);
+    Py_CLEAR(b->week);
+    Py_CLEAR(b->week_n);
+    Py_CLEAR(b->names);
+}
+
+/* The lists of `keys` in `dict`, each one entry per feature. */
+static int lists_of(PyObject *dict, PyObject *const *keys, const char *const *labels, int n, Py_ssize_t n_feat,
+                    PyObject **out) {
+    for (int k = 0; k < n; k++) {
+        out[k] = PyDict_GetItemWithError(dict, keys[k]);
+        if (out[k] == NULL || !PyList_CheckExact(out[k]) || PyList_GET_SIZE(out[k]) != n_feat) {
+            if (!PyErr_Occurred()) PyErr_Format(PyExc_ValueError, "statistic %s missing or of the wrong length", labels[k]);
+            return -1;
+        }
+    }
+    return 0;
+}
+
+/* Fills *b and the float lists named by fkeys / the int lists; -1 with an exception (b released). */
+static int baseline_acquire(PyObject *base, Baseline *b, PyObject *const *fkeys, const char *const *flabels, int nf,
+                            PyObject **fl, PyObject **il) {
+    memset(b, 0, sizeof(*b));
+    if ((b->f = PyObject_GetAttr(base, s_f)) == NULL || (b->ints = PyObject_GetAttr(base, s_i)) == NULL ||
+        (b->day = PyObject_GetAttr(base, s_day)) == NULL || (b->day_n = PyObject_GetAttr(base, s_day_n)) == NULL ||
+        (b->week = PyObject_GetAttr(base, s_week)) == NULL || (b->week_n = PyObject_GetAttr(base, s_week_n)) == NULL ||
+        (b->names = PyObject_GetAttr(base, s_names)) == NULL)
+        goto fail;
+    if (!PyDict_Check(b->f) || !PyDict_Check(b->ints) || !PyList_CheckExact(b->day) || !PyList_CheckExact(b->day_n) ||
+        !PyList_CheckExact(b->week) || !PyList_CheckExact(b->week_n) || !PyList_CheckExact(b->names)) {
+        PyErr_SetString(PyExc_TypeError, "not a SeasonalBaseline");
+        goto fail;
+    }
+    b->n_feat = PyList_GET_SIZE(b->names);
+    if (PyList_GET_SIZE(b->day) != b->n_feat || PyList_GET_SIZE(b->day_n) != b->n_feat ||
+        PyList_GET_SIZE(b->week) != b->n_feat || PyList_GET_SIZE(b->week_n) != b->n_feat) {
+        PyErr_SetString(PyExc_ValueError, "profiles of the wrong length");
+        goto fail;
+    }
+    if (lists_of(b->f, fkeys, flabels, nf, b->n_feat, fl) < 0 ||
+        lists_of(b->ints, int_keys, INT_NAMES, N_INTS, b->n_feat, il) < 0)
+        goto fail;
+    return 0;
+fail:
+    baseline_release(b);
+    return -1;
+}
+
 /* compare(baseline, idx, values, use_day, use_week, blend, Evidence, tail_deviate) -> list of Evidence */
 static PyObject *compare(PyObject *module, PyObject *const *args, Py_ssize_t nargs) {
     if (nargs != 8) {
@@ -141,63 +238,28 @@ static PyObject *compare(PyObject *module, PyObject *const *args, Py_ssize_t nar
         PyErr_SetString(PyExc_TypeError, "idx and values: lists of one length; blend: a 5-tuple; Evidence: a class");
         return NULL;
     }
-    Py_ssize_t hour = PyLong_AsSsize_t(PyTuple_GET_ITEM(blend, 0)), how = PyLong_AsSsize_t(PyTuple_GET_ITEM(blend, 1)),
-               nh = PyLong_AsSsize_t(PyTuple_GET_ITEM(blend, 2)), nw = PyLong_AsSsize_t(PyTuple_GET_ITEM(blend, 3));
-    double bw = PyFloat_AsDouble(PyTuple_GET_ITEM(blend, 4));
-    if (PyErr_Occurred()) return NULL;
-    if (hour < 0 || hour >= 24 || nh < 0 || nh >= 24 || how < 0 || how >= 168 || nw < 0 || nw >= 168) {
-        PyErr_SetString(PyExc_ValueError, "blend slots out of range");
-        return NULL;
-    }
+    Py_ssize_t hour, how, nh, nw;
+    double bw;
+    if (parse_blend(blend, &hour, &how, &nh, &nw, &bw) < 0) return NULL;
 
-    PyObject *f = NULL, *ints = NULL, *day = NULL, *day_n = NULL, *week = NULL, *week_n = NULL, *names = NULL,
-             *out = NULL;
+    PyObject *out = NULL;
     PyObject *fl[N_FLOATS], *il[N_INTS];
-    double floor_abs = 0.0, floor_rel = 0.0;
-    f = PyObject_GetAttr(base, s_f);
-    ints = f ? PyObject_GetAttr(base, s_i) : NULL;
-    day = ints ? PyObject_GetAttr(base, s_day) : NULL;
-    day_n = day ? PyObject_GetAttr(base, s_day_n) : NULL;
-    week = day_n ? PyObject_GetAttr(base, s_week) : NULL;
-    week_n = week ? PyObject_GetAttr(base, s_week_n) : NULL;
-    names = week_n ? PyObject_GetAttr(base, s_names) : NULL;
-    if (names == NULL) goto done;
+    double floor_abs, floor_rel;
+    Baseline bl;
     {
         PyObject *v = PyObject_GetAttr(base, s_absolute_floor);
-        if (v == NULL) goto done;
+        if (v == NULL) return NULL;
         floor_abs = PyFloat_AsDouble(v);
         Py_DECREF(v);
         v = PyObject_GetAttr(base, s_relative_floor);
-        if (v == NULL) goto done;
+        if (v == NULL) return NULL;
         floor_rel = PyFloat_AsDouble(v);
         Py_DECREF(v);
-        if (PyErr_Occurred()) goto done;
+        if (PyErr_Occurred()) return NULL;
     }
-    if (!PyDict_Check(f) || !PyDict_Check(ints) || !PyList_CheckExact(day) || !PyList_CheckExact(day_n) ||
-        !PyList_CheckExact(week) || !PyList_CheckExact(week_n) || !PyList_CheckExact(names)) {
-        PyErr_SetString(PyExc_TypeError, "not a SeasonalBaseline");
-        goto done;
-    }
-    Py_ssize_t n_feat = PyList_GET_SIZE(names);
-    for (int k = 0; k < N_FLOATS; k++) {
-        fl[k] = PyDict_GetItemWithError(f, float_keys[k]);
-        if (fl[k] == NULL || !PyList_CheckExact(fl[k]) || PyList_GET_SIZE(fl[k]) != n_feat) {
-            if (!PyErr_Occurred()) PyErr_Format(PyExc_ValueError, "statistic %s missing or of the wrong length", FLOAT_NAMES[k]);
-            goto done;
-        }
-    }
-    for (int k = 0; k < N_INTS; k++) {
-        il[k] = PyDict_GetItemWithError(ints, int_keys[k]);
-        if (il[k] == NULL || !PyList_CheckExact(il[k]) || PyList_GET_SIZE(il[k]) != n_feat) {
-            if (!PyErr_Occurred()) PyErr_Format(PyExc_ValueError, "count %s missing or of the wrong length", INT_NAMES[k]);
-            goto done;
-        }
-    }
-    if (PyList_GET_SIZE(day) != n_feat || PyList_GET_SIZE(day_n) != n_feat || PyList_GET_SIZE(week) != n_feat ||
-        PyList_GET_SIZE(week_n) != n_feat) {
-        PyErr_SetString(PyExc_ValueError, "profiles of the wrong length");
-        goto done;
-    }
+    if (baseline_acquire(base, &bl, float_keys, FLOAT_NAMES, N_FLOATS, fl, il) < 0) return NULL;
+    PyObject *day = bl.day, *day_n = bl.day_n, *week = bl.week, *week_n = bl.week_n, *names = bl.names;
+    Py_ssize_t n_feat = bl.n_feat;
 
     Py_ssize_t n = PyList_GET_SIZE(idx);
     out = PyList_New(n);
@@ -224,44 +286,12 @@ static PyObject *compare(PyObject *module, PyObject *const *args, Py_ssize_t nar
         double e1b = FV(F_ERR1B, i);
         int smooth = e1b < e1;
         if (smooth) e1 = e1b;
-        double p1, p2;
-        Py_buffer rv, rn;
-        if (use_day) {
-            if (read_row(day_n, i, &rn, "H", 24) < 0) goto fail;
-            const uint16_t *cnt = rn.buf;
-            int have = cnt[hour] != 0, have_next = cnt[nh] != 0;
-            PyBuffer_Release(&rn);
-            if (have) {
-                if (read_row(day, i, &rv, "d", 24) < 0) goto fail;
-                const double *row = rv.buf;
-                p1 = row[hour];
-                if (smooth && have_next) p1 += bw * (row[nh] - p1);
-                PyBuffer_Release(&rv);
-                p1 += FV(F_OFF_D, i);
-            } else {
-                p1 = p0;
-            }
-        } else {
-            p1 = p0;
-        }
-        if (use_week) {
-            if (read_row(week_n, i, &rn, "H", 168) < 0) goto fail;
-            const uint16_t *cnt = rn.buf;
-            int have = cnt[how] != 0, have_next = cnt[nw] != 0;
-            PyBuffer_Release(&rn);
-            if (have) {
-                if (read_row(week, i, &rv, "d", 168) < 0) goto fail;
-                const double *row = rv.buf;
-                p2 = row[how];
-                if (smooth && have_next) p2 += bw * (row[nw] - p2);
-                PyBuffer_Release(&rv);
-                p2 += FV(F_OFF_W, i);
-            } else {
-                p2 = p1;
-            }
-        } else {
-            p2 = p1;
-        }
+        double p1 = p0, p2;
+        if (use_day && profile_predict(day, day_n, i, 24, hour, nh, smooth, bw, PyList_GET_ITEM(fl[F_OFF_D], i), &p1) < 0)
+            goto fail;
+        p2 = p1;
+        if (use_week && profile_predict(week, week_n, i, 168, how, nw, smooth, bw, PyList_GET_ITEM(fl[F_OFF_W], i), &p2) < 0)
+            goto fail;
         double err = FV(F_ERR0, i);
         double p = p0;
         if (e1 < K.prefer_simpler * err) {
@@ -377,13 +407,7 @@ static PyObject *compare(PyObject *module, PyObject *const *args, Py_ssize_t nar
 fail:
     Py_CLEAR(out);
 done:
-    Py_XDECREF(f);
-    Py_XDECREF(ints);
-    Py_XDECREF(day);
-    Py_XDECREF(day_n);
-    Py_XDECREF(week);
-    Py_XDECREF(week_n);
-    Py_XDECREF(names);
+    baseline_release(&bl);
     return out;
 }
 
@@ -440,50 +464,15 @@ static PyObject *update_loop(PyObject *module, PyObject *const *args, Py_ssize_t
         PyErr_SetString(PyExc_TypeError, "idx and values: lists of one length; blend: a 5-tuple");
         return NULL;
     }
-    Py_ssize_t hour = PyLong_AsSsize_t(PyTuple_GET_ITEM(blend, 0)), how = PyLong_AsSsize_t(PyTuple_GET_ITEM(blend, 1)),
-               nh = PyLong_AsSsize_t(PyTuple_GET_ITEM(blend, 2)), nw = PyLong_AsSsize_t(PyTuple_GET_ITEM(blend, 3));
-    double bw = PyFloat_AsDouble(PyTuple_GET_ITEM(blend, 4));
-    if (PyErr_Occurred()) return NULL;
-    if (hour < 0 || hour >= 24 || nh < 0 || nh >= 24 || how < 0 || how >= 168 || nw < 0 || nw >= 168) {
-        PyErr_SetString(PyExc_ValueError, "blend slots out of range");
-        return NULL;
-    }
-    PyObject *f = NULL, *ints = NULL, *day = NULL, *day_n = NULL, *week = NULL, *week_n = NULL, *names = NULL,
-             *result = NULL;
+    Py_ssize_t hour, how, nh, nw;
+    double bw;
+    if (parse_blend(blend, &hour, &how, &nh, &nw, &bw) < 0) return NULL;
+    PyObject *result = NULL;
     PyObject *ul[N_UPDATE], *il[N_INTS];
-    f = PyObject_GetAttr(base, s_f);
-    ints = f ? PyObject_GetAttr(base, s_i) : NULL;
-    day = ints ? PyObject_GetAttr(base, s_day) : NULL;
-    day_n = day ? PyObject_GetAttr(base, s_day_n) : NULL;
-    week = day_n ? PyObject_GetAttr(base, s_week) : NULL;
-    week_n = week ? PyObject_GetAttr(base, s_week_n) : NULL;
-    names = week_n ? PyObject_GetAttr(base, s_names) : NULL;
-    if (names == NULL) goto done;
-    if (!PyDict_Check(f) || !PyDict_Check(ints) || !PyList_CheckExact(day) || !PyList_CheckExact(day_n) ||
-        !PyList_CheckExact(week) || !PyList_CheckExact(week_n) || !PyList_CheckExact(names)) {
-        PyErr_SetString(PyExc_TypeError, "not a SeasonalBaseline");
-        goto done;
-    }
-    Py_ssize_t n_feat = PyList_GET_SIZE(names);
-    for (int k = 0; k < N_UPDATE; k++) {
-        ul[k] = PyDict_GetItemWithError(f, update_keys[k]);
-        if (ul[k] == NULL || !PyList_CheckExact(ul[k]) || PyList_GET_SIZE(ul[k]) != n_feat) {
-            if (!PyErr_Occurred()) PyErr_Format(PyExc_ValueError, "statistic %s missing or of the wrong length", UPDATE_NAMES[k]);
-            goto done;
-        }
-    }
-    for (int k = 0; k < N_INTS; k++) {
-        il[k] = PyDict_GetItemWithError(ints, int_keys[k]);
-        if (il[k] == NULL || !PyList_CheckExact(il[k]) || PyList_GET_SIZE(il[k]) != n_feat) {
-            if (!PyErr_Occurred()) PyErr_Format(PyExc_ValueError, "count %s missing or of the wrong length", INT_NAMES[k]);
-            goto done;
-        }
-    }
-    if (PyList_GET_SIZE(day) != n_feat || PyList_GET_SIZE(day_n) != n_feat || PyList_GET_SIZE(week) != n_feat ||
-        PyList_GET_SIZE(week_n) != n_feat) {
-        PyErr_SetString(PyExc_ValueError, "profiles of the wrong length");
-        goto done;
-    }
+    Baseline bl;
+    if (baseline_acquire(base, &bl, update_keys, UPDATE_NAMES, N_UPDATE, ul, il) < 0) return NULL;
+    PyObject *day = bl.day, *day_n = bl.day_n, *week = bl.week, *week_n = bl.week_n;
+    Py_ssize_t n_feat = bl.n_feat;
     const double ks2 = ks * ks;
     Py_ssize_t n = PyList_GET_SIZE(idx);
     for (Py_ssize_t j = 0; j < n; j++) {
@@ -638,13 +627,7 @@ static PyObject *update_loop(PyObject *module, PyObject *const *args, Py_ssize_t
     result = Py_None;
     Py_INCREF(result);
 done:
-    Py_XDECREF(f);
-    Py_XDECREF(ints);
-    Py_XDECREF(day);
-    Py_XDECREF(day_n);
-    Py_XDECREF(week);
-    Py_XDECREF(week_n);
-    Py_XDECREF(names);
+    baseline_release(&bl);
     return result;
 }
 

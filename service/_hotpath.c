@@ -127,6 +127,20 @@ static inline cursor skip_ws(cursor p, cursor e) {
     return p;
 }
 
+/* After an object member: 1 at a ',' (p moved past it and the whitespace after), 0 at the closing '}'
+ * (p moved past it), -1 at anything else. */
+static inline int after_member(cursor *pp, cursor e) {
+    cursor p = skip_ws(*pp, e);
+    if (p >= e) return -1;
+    if (*p == ',') {
+        *pp = skip_ws(p + 1, e);
+        return 1;
+    }
+    if (*p != '}') return -1;
+    *pp = p + 1;
+    return 0;
+}
+
 /* A string of ASCII characters 0x20..0x7e without escapes; p at its opening quote. Returns the
  * position after the closing quote, or NULL (not handled here). */
 static inline cursor scan_str(cursor p, cursor e, cursor *s, Py_ssize_t *n) {
@@ -413,15 +427,9 @@ static int scan_message(cursor p, cursor e, const Limits *lim, Message *m) {
                 p = scan_num(p, e, &m->is_int[n], &m->ivals[n], &m->dvals[n]);
                 if (p == NULL) return 0;
                 n++;
-                p = skip_ws(p, e);
-                if (p >= e) return 0;
-                if (*p == ',') {
-                    p = skip_ws(p + 1, e);
-                    continue;
-                }
-                if (*p != '}') return 0;
-                p++;
-                break;
+                int more = after_member(&p, e);
+                if (more < 0) return 0;
+                if (!more) break;
             }
             if (has_duplicate(m->names, n)) return 0;
             m->n_metrics = n;
@@ -447,15 +455,9 @@ static int scan_message(cursor p, cursor e, const Limits *lim, Message *m) {
                         p = skip_ws(p + 1, e);
                         p = skip_scalar(p, e);
                         if (p == NULL) return 0;
-                        p = skip_ws(p, e);
-                        if (p >= e) return 0;
-                        if (*p == ',') {
-                            p = skip_ws(p + 1, e);
-                            continue;
-                        }
-                        if (*p != '}') return 0;
-                        p++;
-                        break;
+                        int more = after_member(&p, e);
+                        if (more < 0) return 0;
+                        if (!more) break;
                     }
                     if (has_duplicate(keys, n)) return 0;
                 }
@@ -463,15 +465,12 @@ static int scan_message(cursor p, cursor e, const Limits *lim, Message *m) {
         } else {
             return 0; /* another field: the Python path takes it (and checks it for duplicates) */
         }
-        p = skip_ws(p, e);
-        if (p >= e) return 0;
-        if (*p == ',') {
-            p = skip_ws(p + 1, e);
-            continue;
+        int more = after_member(&p, e);
+        if (more < 0) return 0;
+        if (!more) {
+            p = skip_ws(p, e);
+            break;
         }
-        if (*p != '}') return 0;
-        p = skip_ws(p + 1, e);
-        break;
     }
     return p == e && seen_service && seen_ts && seen_metrics;
 }

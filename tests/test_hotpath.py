@@ -74,19 +74,26 @@ def _fleet(services: int, steps: int, seed: int) -> list[bytes]:
     return out
 
 
-def test_a_plain_fleet_is_scored_identically_and_the_scanner_takes_most_lines(monkeypatch):
-    lines = _fleet(20, 60, seed=3)
-    _same(lines, cuts=[7, 300, 301, 999])
-    # The scanner must be doing the work, not handing every line back.
-    eng, _, _ = _engine(hot=True)
-    handed_back = []
+@pytest.fixture
+def handed_back(monkeypatch) -> list[int]:
+    """How many lines each call of the Python loop took (the lines the scanner handed back)."""
+    calls: list[int] = []
     original = Engine._feed_range
 
     def spy(self, src, raws, lo, hi, origin_of):
-        handed_back.append(hi - lo)
+        calls.append(hi - lo)
         return original(self, src, raws, lo, hi, origin_of)
 
     monkeypatch.setattr(Engine, "_feed_range", spy)
+    return calls
+
+
+def test_a_plain_fleet_is_scored_identically_and_the_scanner_takes_most_lines(handed_back):
+    lines = _fleet(20, 60, seed=3)
+    _same(lines, cuts=[7, 300, 301, 999])
+    # The scanner must be doing the work, not handing every line back.
+    handed_back.clear()
+    eng, _, _ = _engine(hot=True)
     eng.feed(eng.source("p0"), lines, lambda i: i)
     # One line per service and window opens the window (Python), every other line is the scanner's.
     windows = len({(orjson.loads(x)["service"], int(orjson.loads(x)["ts"]) // 60) for x in lines})
@@ -176,18 +183,10 @@ def test_any_mix_of_messages_gives_the_same_scores_rejects_and_state(lines, cuts
     _same(lines, cuts)
 
 
-def test_the_mixed_messages_are_mostly_taken_by_the_scanner(monkeypatch):
+def test_the_mixed_messages_are_mostly_taken_by_the_scanner(handed_back):
     # The mix above must exercise the scanner, not only the Python loop: most of the lines it accepts
     # are taken by the scanner (the windows are opened by the few handed back), and the rest of the
     # mix reaches many reasons to refuse a line.
-    handed_back = []
-    original = Engine._feed_range
-
-    def spy(self, src, raws, lo, hi, origin_of):
-        handed_back.append(hi - lo)
-        return original(self, src, raws, lo, hi, origin_of)
-
-    monkeypatch.setattr(Engine, "_feed_range", spy)
     rng = random.Random(11)
     lines = [_message(rng.choice, _FIRST) for _ in range(400)]  # one window: none late
     eng, _, _ = _engine(hot=True)
