@@ -12,9 +12,10 @@
  *     YYYY-MM-DDTHH:MM:SS[.f] (1 to 6 digits) with Z, +HH:MM, -HH:MM or no zone, within the accepted range;
  *   - "metrics" a non-empty object of numbers within the metrics limit, no name twice;
  *   - "labels" absent, null or a flat object of strings, numbers, booleans and nulls, no key twice;
- *   - the message's window is open already and has seen every one of its metrics.
+ *   - the message's window is open already and has seen every one of its metrics, or the window is new (then it
+ *     is opened here as SourceWindows.add opens one).
  *
- * Anything else (a reject, another form of time, a new service, a new window, a new metric in a window,
+ * Anything else (a reject, another form of time, a new service, a new metric in a window,
  * an integer of 19 digits or more) stops the scan at that line, before anything is changed, so the
  * Python path sees it exactly as it would have. Numbers become the objects orjson would give (int for
  * an integer literal, float otherwise, parsed by CPython's own correctly rounded conversion), and are
@@ -51,9 +52,11 @@ typedef struct {
     size_t used;
     double min_ts;       /* service.decode.MIN_EVENT_TS */
     double ms_threshold; /* service.timefmt.MS_THRESHOLD */
+    PyObject *window_type; /* service.windows.Window, to open new windows (NULL: hand them back) */
+    PyObject *heappush;    /* heapq.heappush (the C one) */
 } Scanner;
 
-static PyObject *s_open, *s_heap, *s_touched, *s_high_mark, *s_values, *s_count, *s_window,
+static PyObject *s_open, *s_heap, *s_touched, *s_high_mark, *s_values, *s_count, *s_start, *s_end, *s_window,
     *s_lateness, *s_max_message_bytes, *s_max_service_name, *s_max_metrics, *s_ceiling;
 
 /* ------------------------------------------------------------------ interning */
@@ -506,6 +509,65 @@ static double attr_double(PyObject *o, PyObject *name, int *err) {
     return d;
 }
 
+/* The number object of metric j: an int for an integer literal, a float otherwise (as orjson gives). */
+static inline PyObject *metric_value(const Message *m, int j) {
+    return m->is_int[j] ? PyLong_FromLongLong(m->ivals[j]) : PyFloat_FromDouble(m->dvals[j]);
+}
+
+/* Opens the window of `service` that starts at `key`, as SourceWindows.add does for a message whose window
+ * is new: the service's mapping of windows is created if it has none, the window (count 1, each metric's
+ * first value, in message order) is stored under its start, and (close_at, service, start) is pushed on the
+ * heap. The Window is made without running its __init__ (its four slots are set here), so no Python code
+ * runs; heapq's C heappush compares tuples of floats and strings. */
+static int open_window(Scanner *self, PyObject *open, PyObject *per_service, PyObject *service, PyObject *key,
+                       double end, double close_at, PyObject *heap, const Message *m) {
+    PyObject *values = PyDict_New(), *w = NULL, *o = NULL, *entry = NULL, *pushed = NULL;
+    int rc = -1;
+    if (values == NULL) return -1;
+    for (int j = 0; j < m->n_metrics; j++) {
+        int owned;
+        PyObject *name = intern_ascii(self, m->names[j].s, m->names[j].n, &owned);
+        if (name == NULL) goto out;
+        PyObject *v = metric_value(m, j), *list = v ? PyList_New(1) : NULL;
+        if (list == NULL) {
+            Py_XDECREF(v);
+            if (owned) Py_DECREF(name);
+            goto out;
+        }
+        PyList_SET_ITEM(list, 0, v);
+        int bad = PyDict_SetItem(values, name, list) < 0;
+        Py_DECREF(list);
+        if (owned) Py_DECREF(name);
+        if (bad) goto out;
+    }
+    PyTypeObject *type = (PyTypeObject *)self->window_type;
+    if ((w = type->tp_alloc(type, 0)) == NULL) goto out;
+    if (PyObject_SetAttr(w, s_start, key) < 0 || (o = PyFloat_FromDouble(end)) == NULL ||
+        PyObject_SetAttr(w, s_end, o) < 0)
+        goto out;
+    Py_CLEAR(o);
+    if ((o = PyLong_FromLong(1)) == NULL || PyObject_SetAttr(w, s_count, o) < 0 ||
+        PyObject_SetAttr(w, s_values, values) < 0)
+        goto out;
+    Py_CLEAR(o);
+    if (per_service == NULL) {
+        if ((o = PyDict_New()) == NULL || PyDict_SetItem(open, service, o) < 0) goto out;
+        per_service = o; /* kept alive by `open` */
+    }
+    if (PyDict_SetItem(per_service, key, w) < 0) goto out;
+    Py_CLEAR(o);
+    if ((o = PyFloat_FromDouble(close_at)) == NULL || (entry = PyTuple_Pack(3, o, service, key)) == NULL) goto out;
+    if ((pushed = PyObject_CallFunctionObjArgs(self->heappush, heap, entry, NULL)) == NULL) goto out;
+    rc = 0;
+out:
+    Py_XDECREF(values);
+    Py_XDECREF(w);
+    Py_XDECREF(o);
+    Py_XDECREF(entry);
+    Py_XDECREF(pushed);
+    return rc;
+}
+
 /* Scanner.feed(decoder, src, raws, start, owner, resolved) -> (next, accepted, due).
  *
  * Takes raws[start:] while each line is a common-case message and adds it to its window. Stops at
@@ -557,7 +619,8 @@ static PyObject *Scanner_feed(Scanner *self, PyObject *const *args, Py_ssize_t n
         PyObject *o = PyDict_GetItemWithError(owner, service);
         PyObject *settings = o == src ? PyDict_GetItemWithError(resolved, service) : NULL;
         PyObject *per_service = settings != NULL ? PyDict_GetItemWithError(open, service) : NULL;
-        if (per_service == NULL || !PyDict_CheckExact(per_service)) {
+        if (settings == NULL || (per_service == NULL && PyErr_Occurred()) ||
+            (per_service != NULL && !PyDict_CheckExact(per_service))) {
             if (owned) Py_DECREF(service);
             if (PyErr_Occurred()) goto done;
             break;
@@ -583,13 +646,20 @@ static PyObject *Scanner_feed(Scanner *self, PyObject *const *args, Py_ssize_t n
             if (owned) Py_DECREF(service);
             goto done;
         }
-        PyObject *window = PyDict_GetItemWithError(per_service, key);
-        Py_DECREF(key);
-        if (window == NULL) { /* a new window: the Python path opens it */
+        PyObject *window = per_service != NULL ? PyDict_GetItemWithError(per_service, key) : NULL;
+        if (window == NULL) {
+            /* A new window: opened here (the line is taken), or handed back where the scanner was made
+             * without the Window class. */
+            int rc = PyErr_Occurred() ? -1 : self->window_type == NULL ? 1
+                   : open_window(self, open, per_service, service, key, start + length, close_at, heap, &m);
+            Py_DECREF(key);
+            if (rc == 0 && PySet_Add(touched, service) < 0) rc = -1;
             if (owned) Py_DECREF(service);
-            if (PyErr_Occurred()) goto done;
-            break;
+            if (rc < 0) goto done;
+            if (rc > 0) break;
+            goto taken;
         }
+        Py_DECREF(key);
         PyObject *values = PyObject_GetAttr(window, s_values);
         if (values == NULL) {
             if (owned) Py_DECREF(service);
@@ -628,7 +698,7 @@ static PyObject *Scanner_feed(Scanner *self, PyObject *const *args, Py_ssize_t n
         int failed = new_count == NULL || PyObject_SetAttr(window, s_count, new_count) < 0;
         Py_XDECREF(new_count);
         for (int j = 0; !failed && j < m.n_metrics; j++) {
-            PyObject *v = m.is_int[j] ? PyLong_FromLongLong(m.ivals[j]) : PyFloat_FromDouble(m.dvals[j]);
+            PyObject *v = metric_value(&m, j);
             failed = v == NULL || PyList_Append(lists[j], v) < 0;
             Py_XDECREF(v);
         }
@@ -636,6 +706,7 @@ static PyObject *Scanner_feed(Scanner *self, PyObject *const *args, Py_ssize_t n
         if (!failed) failed = PySet_Add(touched, service) < 0;
         if (owned) Py_DECREF(service);
         if (failed) goto done;
+    taken:
         if (ts > high_mark) {
             high_mark = ts;
             mark_moved = 1;
@@ -674,11 +745,26 @@ done:
 static PyObject *Scanner_interned(Scanner *self, PyObject *unused) { return PyLong_FromSize_t(self->used); }
 
 static int Scanner_init(Scanner *self, PyObject *args, PyObject *kwds) {
-    static char *kwlist[] = {"min_event_ts", "ms_threshold", NULL};
-    return PyArg_ParseTupleAndKeywords(args, kwds, "$dd", kwlist, &self->min_ts, &self->ms_threshold) ? 0 : -1;
+    static char *kwlist[] = {"min_event_ts", "ms_threshold", "window_type", "heappush", NULL};
+    PyObject *window_type = NULL, *heappush = NULL;
+    if (!PyArg_ParseTupleAndKeywords(args, kwds, "$ddOO", kwlist, &self->min_ts, &self->ms_threshold, &window_type,
+                                     &heappush))
+        return -1;
+    if (window_type == Py_None) window_type = NULL;
+    if (window_type != NULL && (!PyType_Check(window_type) || heappush == NULL || !PyCallable_Check(heappush))) {
+        PyErr_SetString(PyExc_TypeError, "window_type must be a class (or None) and heappush callable");
+        return -1;
+    }
+    Py_XINCREF(window_type);
+    Py_XINCREF(heappush);
+    Py_XSETREF(self->window_type, window_type);
+    Py_XSETREF(self->heappush, heappush);
+    return 0;
 }
 
 static void Scanner_dealloc(Scanner *self) {
+    Py_XDECREF(self->window_type);
+    Py_XDECREF(self->heappush);
     for (size_t i = 0; i < self->cap; i++) Py_XDECREF(self->slots[i].str);
     PyMem_Free(self->slots);
     Py_TYPE(self)->tp_free((PyObject *)self);
@@ -732,6 +818,8 @@ PyMODINIT_FUNC PyInit__hotpath(void) {
     NAME(s_high_mark, "high_mark")
     NAME(s_values, "values")
     NAME(s_count, "count")
+    NAME(s_start, "start")
+    NAME(s_end, "end")
     NAME(s_window, "window")
     NAME(s_lateness, "lateness")
     NAME(s_max_message_bytes, "max_message_bytes")

@@ -9,6 +9,7 @@ of ``service/_hotpath.c`` where it is built; the Python loop takes the rest and 
 
 from __future__ import annotations
 
+import heapq
 import logging
 import os
 import time
@@ -88,7 +89,8 @@ class Engine:
         self.sources: dict[str, SourceWindows] = {}
         # service -> the source its messages arrive on (its state is kept with that source)
         self.owner: dict[str, SourceWindows] = {}
-        self._scanner = (_Scanner(min_event_ts=MIN_EVENT_TS, ms_threshold=MS_THRESHOLD)
+        self._scanner = (_Scanner(min_event_ts=MIN_EVENT_TS, ms_threshold=MS_THRESHOLD,
+                                  window_type=Window, heappush=heapq.heappush)
                          if _Scanner is not None else None)
         self._failures_logged: set[str] = set()  # services whose model failure was logged (once each)
 
