@@ -36,7 +36,7 @@ enum { I_COUNT, I_RUN, I_AWAY, N_INTS };
 
 static PyObject *float_keys[N_FLOATS], *int_keys[N_INTS];
 static PyObject *s_f, *s_i, *s_day, *s_day_n, *s_week, *s_week_n, *s_names, *s_absolute_floor,
-    *s_relative_floor, *s_count_name, *s_expected, *s_z, *s_change, *s_stuck, *s_scorable, *s_p, *s_drift,
+    *s_relative_floor, *s_expected, *s_z, *s_change, *s_stuck, *s_scorable, *s_p, *s_drift,
     *s_held;
 
 static int configure_from(PyObject *d) {
@@ -110,10 +110,11 @@ static PyObject *evidence(PyObject *cls, double expected, double z, double chang
     return obj;
 }
 
-/* One entry of an array('d') or array('H') profile row. */
-static int read_row(PyObject *rows, Py_ssize_t i, Py_buffer *view, const char *fmt, Py_ssize_t width) {
+/* Row i of a profile (array('d') or array('H') of `width` entries), as a buffer; writable for the update. */
+static int read_row(PyObject *rows, Py_ssize_t i, Py_buffer *view, const char *fmt, Py_ssize_t width, int writable) {
     PyObject *row = PyList_GET_ITEM(rows, i);
-    if (PyObject_GetBuffer(row, view, PyBUF_C_CONTIGUOUS | PyBUF_FORMAT) < 0) return -1;
+    if (PyObject_GetBuffer(row, view, PyBUF_C_CONTIGUOUS | PyBUF_FORMAT | (writable ? PyBUF_WRITABLE : 0)) < 0)
+        return -1;
     if (strcmp(view->format ? view->format : "B", fmt) != 0 || view->len != width * view->itemsize) {
         PyBuffer_Release(view);
         PyErr_SetString(PyExc_ValueError, "malformed profile row");
@@ -125,6 +126,10 @@ static int read_row(PyObject *rows, Py_ssize_t i, Py_buffer *view, const char *f
 
 /* (hour, how, next_hour, next_how, w) from models.seasonal.blend_of, checked. */
 static int parse_blend(PyObject *blend, Py_ssize_t *hour, Py_ssize_t *how, Py_ssize_t *nh, Py_ssize_t *nw, double *bw) {
+    if (!PyTuple_CheckExact(blend) || PyTuple_GET_SIZE(blend) != 5) {
+        PyErr_SetString(PyExc_TypeError, "blend: a 5-tuple");
+        return -1;
+    }
     *hour = PyLong_AsSsize_t(PyTuple_GET_ITEM(blend, 0));
     *how = PyLong_AsSsize_t(PyTuple_GET_ITEM(blend, 1));
     *nh = PyLong_AsSsize_t(PyTuple_GET_ITEM(blend, 2));
@@ -144,12 +149,12 @@ static int parse_blend(PyObject *blend, Py_ssize_t *hour, Py_ssize_t *how, Py_ss
 static int profile_predict(PyObject *rows, PyObject *counts, Py_ssize_t i, Py_ssize_t width, Py_ssize_t slot,
                            Py_ssize_t next, int smooth, double bw, PyObject *offset, double *out) {
     Py_buffer rn, rv;
-    if (read_row(counts, i, &rn, "H", width) < 0) return -1;
+    if (read_row(counts, i, &rn, "H", width, 0) < 0) return -1;
     const uint16_t *cnt = rn.buf;
     int have = cnt[slot] != 0, have_next = cnt[next] != 0;
     PyBuffer_Release(&rn);
     if (!have) return 0;
-    if (read_row(rows, i, &rv, "d", width) < 0) return -1;
+    if (read_row(rows, i, &rv, "d", width, 0) < 0) return -1;
     const double *row = rv.buf;
     double p = row[slot];
     if (smooth && have_next) p += bw * (row[next] - p);
@@ -234,8 +239,8 @@ static PyObject *compare(PyObject *module, PyObject *const *args, Py_ssize_t nar
     int use_day = PyObject_IsTrue(args[3]), use_week = PyObject_IsTrue(args[4]);
     if (use_day < 0 || use_week < 0) return NULL;
     if (!PyList_CheckExact(idx) || !PyList_CheckExact(values) || PyList_GET_SIZE(idx) != PyList_GET_SIZE(values) ||
-        !PyTuple_CheckExact(blend) || PyTuple_GET_SIZE(blend) != 5 || !PyType_Check(ev_cls)) {
-        PyErr_SetString(PyExc_TypeError, "idx and values: lists of one length; blend: a 5-tuple; Evidence: a class");
+        !PyType_Check(ev_cls)) {
+        PyErr_SetString(PyExc_TypeError, "idx and values: lists of one length; Evidence: a class");
         return NULL;
     }
     Py_ssize_t hour, how, nh, nw;
@@ -435,16 +440,6 @@ static inline int set_long(PyObject *list, Py_ssize_t i, long v) {
     return PyList_SetItem(list, i, o);
 }
 
-static int row_buffer(PyObject *rows, Py_ssize_t i, Py_buffer *view, const char *fmt, Py_ssize_t width) {
-    PyObject *row = PyList_GET_ITEM(rows, i);
-    if (PyObject_GetBuffer(row, view, PyBUF_C_CONTIGUOUS | PyBUF_FORMAT | PyBUF_WRITABLE) < 0) return -1;
-    if (strcmp(view->format ? view->format : "B", fmt) != 0 || view->len != width * view->itemsize) {
-        PyBuffer_Release(view);
-        PyErr_SetString(PyExc_ValueError, "malformed profile row");
-        return -1;
-    }
-    return 0;
-}
 
 /* update_loop(baseline, idx, values, timed, use_day, use_week, blend, a, keep, ks, kr, a_day, a_week): the
  * learning loop of SeasonalBaseline.update (the part after the tails and the drift), in place. */
@@ -459,9 +454,8 @@ static PyObject *update_loop(PyObject *module, PyObject *const *args, Py_ssize_t
     double a = PyFloat_AsDouble(args[7]), keep = PyFloat_AsDouble(args[8]), ks = PyFloat_AsDouble(args[9]),
            kr = PyFloat_AsDouble(args[10]), a_day = PyFloat_AsDouble(args[11]), a_week = PyFloat_AsDouble(args[12]);
     if (timed < 0 || use_day < 0 || use_week < 0 || PyErr_Occurred()) return NULL;
-    if (!PyList_CheckExact(idx) || !PyList_CheckExact(values) || PyList_GET_SIZE(idx) != PyList_GET_SIZE(values) ||
-        !PyTuple_CheckExact(blend) || PyTuple_GET_SIZE(blend) != 5) {
-        PyErr_SetString(PyExc_TypeError, "idx and values: lists of one length; blend: a 5-tuple");
+    if (!PyList_CheckExact(idx) || !PyList_CheckExact(values) || PyList_GET_SIZE(idx) != PyList_GET_SIZE(values)) {
+        PyErr_SetString(PyExc_TypeError, "idx and values: lists of one length");
         return NULL;
     }
     Py_ssize_t hour, how, nh, nw;
@@ -492,33 +486,33 @@ static PyObject *update_loop(PyObject *module, PyObject *const *args, Py_ssize_t
                 set_float(ul[U_HELD], i, x) < 0)
                 goto done;
             if (timed) {
-                if (row_buffer(day, i, &dv, "d", 24) < 0) goto done;
+                if (read_row(day, i, &dv, "d", 24, 1) < 0) goto done;
                 ((double *)dv.buf)[hour] = x;
                 PyBuffer_Release(&dv);
-                if (row_buffer(day_n, i, &dn, "H", 24) < 0) goto done;
+                if (read_row(day_n, i, &dn, "H", 24, 1) < 0) goto done;
                 ((uint16_t *)dn.buf)[hour] = 1;
                 PyBuffer_Release(&dn);
-                if (row_buffer(week, i, &wv, "d", 168) < 0) goto done;
+                if (read_row(week, i, &wv, "d", 168, 1) < 0) goto done;
                 ((double *)wv.buf)[how] = x;
                 PyBuffer_Release(&wv);
-                if (row_buffer(week_n, i, &wn, "H", 168) < 0) goto done;
+                if (read_row(week_n, i, &wn, "H", 168, 1) < 0) goto done;
                 ((uint16_t *)wn.buf)[how] = 1;
                 PyBuffer_Release(&wn);
             }
             if (set_long(il[I_COUNT], i, 1) < 0) goto done;
             continue;
         }
-        if (row_buffer(day, i, &dv, "d", 24) < 0) goto done;
-        if (row_buffer(day_n, i, &dn, "H", 24) < 0) {
+        if (read_row(day, i, &dv, "d", 24, 1) < 0) goto done;
+        if (read_row(day_n, i, &dn, "H", 24, 1) < 0) {
             PyBuffer_Release(&dv);
             goto done;
         }
-        if (row_buffer(week, i, &wv, "d", 168) < 0) {
+        if (read_row(week, i, &wv, "d", 168, 1) < 0) {
             PyBuffer_Release(&dv);
             PyBuffer_Release(&dn);
             goto done;
         }
-        if (row_buffer(week_n, i, &wn, "H", 168) < 0) {
+        if (read_row(week_n, i, &wn, "H", 168, 1) < 0) {
             PyBuffer_Release(&dv);
             PyBuffer_Release(&dn);
             PyBuffer_Release(&wv);
@@ -681,7 +675,6 @@ PyMODINIT_FUNC PyInit__baselinecore(void) {
     NAME(s_names, "_names")
     NAME(s_absolute_floor, "absolute_floor")
     NAME(s_relative_floor, "relative_floor")
-    NAME(s_count_name, "count")
     NAME(s_expected, "expected")
     NAME(s_z, "z")
     NAME(s_change, "change")

@@ -17,12 +17,18 @@ True
 from __future__ import annotations
 
 import math
+import os
 from collections.abc import Mapping
 from typing import Protocol, runtime_checkable
 
 from models.errors import FeatureError
 
-__all__ = ["Scorer", "split_features"]
+__all__ = ["Scorer", "split_features", "PURE_PYTHON"]
+
+#: ``TIDEWATCH_PURE_PYTHON=1``: the C accelerators (``service/_hotpath.c``, ``models/_hstcore.c``,
+#: ``models/_baselinecore.c``) stay off in this process, to compare or to rule them out; the Python code
+#: they stand in for does the same work.
+PURE_PYTHON = os.environ.get("TIDEWATCH_PURE_PYTHON", "") not in ("", "0")
 
 
 @runtime_checkable

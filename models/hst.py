@@ -51,13 +51,12 @@ Examples
 from __future__ import annotations
 
 import math
-import os
 from collections.abc import Mapping
 from typing import Any, NamedTuple
 
 import numpy as np
 
-from models.base import split_features
+from models.base import PURE_PYTHON, split_features
 from models.errors import CorruptState, SettingsError
 
 try:
@@ -68,7 +67,7 @@ try:
     from models._hstcore import walk as _c_walk
 except ImportError:  # pragma: no cover - depends on the install
     _c_draw_padded = _c_walk = None
-if os.environ.get("TIDEWATCH_PURE_PYTHON", "") not in ("", "0"):
+if PURE_PYTHON:
     _c_draw_padded = _c_walk = None
 
 __all__ = ["HalfSpaceTrees", "SPLIT_RULES"]
@@ -263,9 +262,7 @@ class HalfSpaceTrees:
             draws = rng.random(2 * self.n_trees * internal)
             feature = np.empty((self.n_trees, internal), dtype=np.int64)
             threshold = np.empty((self.n_trees, internal), dtype=np.float64)
-            _c_draw_padded(draws, np.ascontiguousarray(self._low, dtype=np.float64),
-                           np.ascontiguousarray(self._high, dtype=np.float64),
-                           self.n_trees, self.height, _PADDING, feature, threshold)
+            _c_draw_padded(draws, self._low, self._high, self.n_trees, self.height, _PADDING, feature, threshold)
         elif self.split == "padded":
             feature, threshold = self._draw_padded(rng, n_f)
         else:
@@ -403,8 +400,8 @@ class HalfSpaceTrees:
         # height 8, and memory per model is what a fleet pays for.
         if _c_walk is not None:
             path = np.empty((self.n_trees, self.height + 1), dtype=np.intp)
-            _c_walk(v if v.flags.c_contiguous and v.dtype == np.float64 else np.ascontiguousarray(v, dtype=np.float64),
-                    self._feature, self._threshold, self.n_trees, self.height, self.n_nodes, path)
+            _c_walk(np.ascontiguousarray(v, dtype=np.float64), self._feature, self._threshold, self.n_trees,
+                    self.height, self.n_nodes, path)
             return path
         walk = self._walk
         if not walk or walk[0] is not self._feature or walk[1] is not self._threshold:

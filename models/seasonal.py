@@ -69,7 +69,6 @@ Examples
 from __future__ import annotations
 
 import math
-import os
 from array import array
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
@@ -78,7 +77,7 @@ from typing import Any
 
 import numpy as np
 
-from models.base import split_features
+from models.base import PURE_PYTHON, split_features
 from models.baseline import Z_LIMIT, alpha_from_half_life
 from models.errors import CorruptState, SettingsError
 
@@ -196,7 +195,7 @@ try:
     from models import _baselinecore
 except ImportError:  # pragma: no cover - depends on the install
     _baselinecore = None
-if os.environ.get("TIDEWATCH_PURE_PYTHON", "") not in ("", "0"):
+if PURE_PYTHON:
     _baselinecore = None
 _c_compare = _c_update_loop = None
 if _baselinecore is not None:
@@ -737,6 +736,11 @@ class SeasonalBaseline:
                 self._slot_alphas = (self.step, a_day, a_week)
         else:
             a_day = a_week = 0.0
+        if _c_update_loop is not None and type(idx) is list and type(values) is list:
+            # The loop below in C (models/_baselinecore.c), the same statistics bit for bit.
+            _c_update_loop(self, idx, values, at is not None, use_day, use_week, (hour, how, nh, nw, bw),
+                           a, keep, ks, kr, a_day, a_week)
+            return
         level, lw, off_d, off_w = f["level"], f["lw"], f["off_day"], f["off_week"]
         err0, err1, err2, err1b = f["err0"], f["err1"], f["err2"], f["err1b"]
         ks2 = ks * ks
@@ -744,11 +748,6 @@ class SeasonalBaseline:
         rr, rrw, rpend = f["rr"], f["rrw"], f["rpend"]
         count = ints["count"]
         day, day_n, week, week_n = self._day, self._day_n, self._week, self._week_n
-        if _c_update_loop is not None and type(idx) is list and type(values) is list:
-            # The loop below in C (models/_baselinecore.c), the same statistics bit for bit.
-            _c_update_loop(self, idx, values, at is not None, use_day, use_week, (hour, how, nh, nw, bw),
-                           a, keep, ks, kr, a_day, a_week)
-            return
         for i, x in zip(idx, values):
             n = count[i]
             if n == 0:

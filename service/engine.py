@@ -11,11 +11,11 @@ from __future__ import annotations
 
 import heapq
 import logging
-import os
 import time
 from collections.abc import Callable, Sequence
 from typing import Any
 
+from models.base import PURE_PYTHON
 from service.config import Config
 from service.decode import MIN_EVENT_TS, NativeDecoder, Rejected
 from service.registry import ModelRegistry
@@ -31,7 +31,7 @@ try:
     from service._hotpath import Scanner as _Scanner
 except ImportError:  # pragma: no cover - depends on the install
     _Scanner = None
-if os.environ.get("TIDEWATCH_PURE_PYTHON", "") not in ("", "0"):
+if PURE_PYTHON:
     _Scanner = None
 
 #: Whether this process feeds batches through the C hot path.
