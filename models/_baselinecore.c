@@ -225,9 +225,26 @@ fail:
 }
 
 /* compare(baseline, idx, values, use_day, use_week, blend, Evidence, tail_deviate) -> list of Evidence */
+/* models.seasonal.repeats: whether this window repeats the one before (1, 0, or -1 with an error set).
+ * `steady` is None (no within-window reading: equal values), or whether the metric held one value all window. */
+static int repeats(double x, double x_last, PyObject *steady, long run) {
+    if (steady == Py_None) return x == x_last;
+    int held_through = PyObject_IsTrue(steady);
+    if (held_through < 0) return -1;
+    return held_through && (run == 0 || x == x_last);
+}
+
+/* The optional `steady` list of compare and update_loop: None, or a list as long as idx. */
+static int check_steady(PyObject *steady, Py_ssize_t n) {
+    if (steady == Py_None || (PyList_CheckExact(steady) && PyList_GET_SIZE(steady) == n)) return 0;
+    PyErr_SetString(PyExc_TypeError, "steady: None or a list as long as idx");
+    return -1;
+}
+
 static PyObject *compare(PyObject *module, PyObject *const *args, Py_ssize_t nargs) {
-    if (nargs != 8) {
-        PyErr_SetString(PyExc_TypeError, "compare(baseline, idx, values, use_day, use_week, blend, Evidence, tail_deviate)");
+    if (nargs != 9) {
+        PyErr_SetString(PyExc_TypeError,
+                        "compare(baseline, idx, values, use_day, use_week, blend, Evidence, tail_deviate, steady)");
         return NULL;
     }
     if (!K.ready) {
@@ -235,7 +252,7 @@ static PyObject *compare(PyObject *module, PyObject *const *args, Py_ssize_t nar
         return NULL;
     }
     PyObject *base = args[0], *idx = args[1], *values = args[2], *blend = args[5], *ev_cls = args[6],
-             *tail_deviate = args[7];
+             *tail_deviate = args[7], *steady = args[8];
     int use_day = PyObject_IsTrue(args[3]), use_week = PyObject_IsTrue(args[4]);
     if (use_day < 0 || use_week < 0) return NULL;
     if (!PyList_CheckExact(idx) || !PyList_CheckExact(values) || PyList_GET_SIZE(idx) != PyList_GET_SIZE(values) ||
@@ -243,6 +260,7 @@ static PyObject *compare(PyObject *module, PyObject *const *args, Py_ssize_t nar
         PyErr_SetString(PyExc_TypeError, "idx and values: lists of one length; Evidence: a class");
         return NULL;
     }
+    if (check_steady(steady, PyList_GET_SIZE(idx)) < 0) return NULL;
     Py_ssize_t hour, how, nh, nw;
     double bw;
     if (parse_blend(blend, &hour, &how, &nh, &nw, &bw) < 0) return NULL;
@@ -344,13 +362,14 @@ static PyObject *compare(PyObject *module, PyObject *const *args, Py_ssize_t nar
         c = c > K.z_limit ? K.z_limit : c < -K.z_limit ? -K.z_limit : c;
         double stuck = 0.0, p_stuck = 1.0, q = 1.0;
         double rep = FV(F_REP, i), repw = FV(F_REPW, i), rpend = FV(F_RPEND, i);
+        long run = PyLong_AsLong(PyList_GET_ITEM(il[I_RUN], i));
         if (PyErr_Occurred()) goto fail;
-        if (x == x_last) {
+        int same = repeats(x, x_last, steady == Py_None ? Py_None : PyList_GET_ITEM(steady, j), run);
+        if (same < 0) goto fail;
+        if (same) {
             q = (rep + K.stuck_prior_repeats) / (repw + 1.0);
             if ((rep + rpend + 0.5) / (repw + 1.0) < K.stuck_max_rate) {
                 double q2 = (FV(F_RR, i) + K.stuck_prior_runs * q) / (FV(F_RRW, i) + K.stuck_prior_runs);
-                long run = PyLong_AsLong(PyList_GET_ITEM(il[I_RUN], i));
-                if (PyErr_Occurred()) goto fail;
                 /* float ** int in CPython: 1.0 for a zero exponent, else libm pow of the two doubles */
                 p_stuck = q * (run == 0 ? 1.0 : pow(q2, (double)run));
                 PyObject *ps = PyFloat_FromDouble(p_stuck);
@@ -444,12 +463,13 @@ static inline int set_long(PyObject *list, Py_ssize_t i, long v) {
 /* update_loop(baseline, idx, values, timed, use_day, use_week, blend, a, keep, ks, kr, a_day, a_week): the
  * learning loop of SeasonalBaseline.update (the part after the tails and the drift), in place. */
 static PyObject *update_loop(PyObject *module, PyObject *const *args, Py_ssize_t nargs) {
-    if (nargs != 13) {
+    if (nargs != 14) {
         PyErr_SetString(PyExc_TypeError,
-                        "update_loop(baseline, idx, values, timed, use_day, use_week, blend, a, keep, ks, kr, a_day, a_week)");
+                        "update_loop(baseline, idx, values, timed, use_day, use_week, blend, a, keep, ks, kr, a_day, a_week, "
+                        "steady)");
         return NULL;
     }
-    PyObject *base = args[0], *idx = args[1], *values = args[2], *blend = args[6];
+    PyObject *base = args[0], *idx = args[1], *values = args[2], *blend = args[6], *steady = args[13];
     int timed = PyObject_IsTrue(args[3]), use_day = PyObject_IsTrue(args[4]), use_week = PyObject_IsTrue(args[5]);
     double a = PyFloat_AsDouble(args[7]), keep = PyFloat_AsDouble(args[8]), ks = PyFloat_AsDouble(args[9]),
            kr = PyFloat_AsDouble(args[10]), a_day = PyFloat_AsDouble(args[11]), a_week = PyFloat_AsDouble(args[12]);
@@ -458,6 +478,7 @@ static PyObject *update_loop(PyObject *module, PyObject *const *args, Py_ssize_t
         PyErr_SetString(PyExc_TypeError, "idx and values: lists of one length");
         return NULL;
     }
+    if (check_steady(steady, PyList_GET_SIZE(idx)) < 0) return NULL;
     Py_ssize_t hour, how, nh, nw;
     double bw;
     if (parse_blend(blend, &hour, &how, &nh, &nw, &bw) < 0) return NULL;
@@ -549,6 +570,8 @@ static PyObject *update_loop(PyObject *module, PyObject *const *args, Py_ssize_t
         long run = PyLong_AsLong(PyList_GET_ITEM(il[I_RUN], i));
         long away = PyLong_AsLong(PyList_GET_ITEM(il[I_AWAY], i));
         if (PyErr_Occurred()) failed = 1;
+        int repeated = failed ? 0 : repeats(x, x_last, steady == Py_None ? Py_None : PyList_GET_ITEM(steady, j), run);
+        if (repeated < 0) failed = 1;
         if (!failed) {
             err0 += (fabs(x - p0) - err0) / w;
             err1 += (fabs(x - s1) - err1) / w;
@@ -557,7 +580,7 @@ static PyObject *update_loop(PyObject *module, PyObject *const *args, Py_ssize_t
             ew2 = ks2 * ew2 + 1.0;
             double wd = ks * dw + 1.0;
             dscale += (fabs(x - x_last) - dscale) / wd;
-            double same = x == x_last ? 1.0 : 0.0;
+            double same = repeated ? 1.0 : 0.0;
             rep = kr * rep;
             rpend = kr * rpend + same;
             repw = kr * repw + 1.0;

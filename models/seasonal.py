@@ -36,7 +36,9 @@ scale so they can be compared and squashed alike:
   when nothing repeats). Both rates are those learnt before the run began: the run's own
   repeats join the repeat rate only when it ends, so a frozen exporter does not make its own
   run look routine while it is being judged. A feature that often repeats (a counter that sits
-  at 0, counting the run in progress) gives none;
+  at 0, counting the run in progress) gives none. When the caller knows that the window saw the
+  metric several times (``steady``, see :func:`repeats`), a repeat is a window that held one value
+  throughout, so a frozen exporter's first whole window counts;
 * ``drift`` -- an EWMA of the clipped ``z`` over its own learned scale: a deviation too small to
   alert in any one window that persists (a slow leak, a level that creeps) grows it.
 
@@ -68,6 +70,7 @@ Examples
 
 from __future__ import annotations
 
+import itertools
 import math
 from array import array
 from collections.abc import Mapping, Sequence
@@ -81,7 +84,7 @@ from models.base import PURE_PYTHON, split_features
 from models.baseline import Z_LIMIT, alpha_from_half_life
 from models.errors import CorruptState, SettingsError
 
-__all__ = ["Evidence", "SeasonalBaseline", "blend_of", "slots_of", "tail_deviate"]
+__all__ = ["Evidence", "SeasonalBaseline", "blend_of", "repeats", "slots_of", "tail_deviate"]
 
 DAY_S = 86400.0
 WEEK_S = 7 * DAY_S
@@ -245,6 +248,31 @@ def blend_of(at: float) -> tuple[int, int, int, int, float]:
     return hour, how, (hour + 1) % 24, (how + 1) % 168, c
 
 
+# ``steady`` when the caller has no within-window information: every feature "too few to tell".
+_NO_STEADY = itertools.repeat(None)
+
+
+def repeats(x: float, x_last: float, steady: bool | None, run: int) -> bool:
+    """Whether a window counts as a repeat of the one before, for the ``stuck`` evidence.
+
+    Without within-window information (``steady`` None: the window saw the metric once, or the
+    feature is the message count) a repeat is the same value as the previous window's. When the
+    window saw its metric at least twice, a repeat is a window that held one value throughout
+    (``steady`` True): the first such window starts a run, and the run goes on while the windows
+    keep holding that same value. A frozen exporter is then caught in its first whole window
+    rather than its second, and judged by how often the metric holds still for a whole window,
+    which for a metric scraped several times a window is far rarer than two equal means.
+
+    >>> repeats(3.0, 3.0, None, 0), repeats(3.0, 2.5, True, 0), repeats(3.0, 2.5, True, 1)
+    (True, True, False)
+    >>> repeats(3.0, 3.0, False, 4)       # equal means, but the metric moved within the window
+    False
+    """
+    if steady is None:
+        return x == x_last
+    return steady and (run == 0 or x == x_last)
+
+
 def tail_deviate(p: float) -> float:
     """Normal deviate whose upper tail probability is ``p`` (0 for ``p >= 0.5``).
 
@@ -392,18 +420,27 @@ class SeasonalBaseline:
         return alpha_from_half_life(visits)
 
     # ------------------------------------------------------------------ evidence
-    def compare(self, idx: Sequence[int], values: Sequence[float], at: float | None
-                ) -> list[Evidence]:
-        """Evidence for ``values`` at positions ``idx`` (from :meth:`locate`), before learning."""
-        if _c_compare is not None and type(idx) is list and type(values) is list:
+    def compare(self, idx: Sequence[int], values: Sequence[float], at: float | None,
+                steady: Sequence[bool | None] | None = None) -> list[Evidence]:
+        """Evidence for ``values`` at positions ``idx`` (from :meth:`locate`), before learning.
+
+        ``steady`` (same order, optional) says for each feature whether its metric held one value
+        through the whole window (True), moved within it (False), or was seen too few times to
+        tell (None); see :func:`repeats`.
+        """
+        if steady is not None and len(steady) != len(idx):
+            raise ValueError("steady must be as long as idx")
+        if _c_compare is not None and type(idx) is list and type(values) is list and (
+                steady is None or type(steady) is list):
             # The loop below in C (models/_baselinecore.c), the same evidence bit for bit.
             use_day, use_week = self._cycles(at)
             return _c_compare(self, idx, values, use_day, use_week,
-                              blend_of(at) if at is not None else (0, 0, 0, 0, 0.0), Evidence, tail_deviate)
-        return self._compare(idx, values, at)
+                              blend_of(at) if at is not None else (0, 0, 0, 0, 0.0), Evidence, tail_deviate,
+                              steady)
+        return self._compare(idx, values, at, steady)
 
-    def _compare(self, idx: Sequence[int], values: Sequence[float], at: float | None
-                 ) -> list[Evidence]:
+    def _compare(self, idx: Sequence[int], values: Sequence[float], at: float | None,
+                 steady: Sequence[bool | None] | None = None) -> list[Evidence]:
         """:meth:`compare` in Python: the reference of the C loop, and its fallback."""
         # The predictions, the best-prediction choice and the tail probabilities of
         # :meth:`_predictions`, :meth:`_best` and :meth:`_tail_p` are written out in the loop:
@@ -430,7 +467,7 @@ class SeasonalBaseline:
         floor_abs, floor_rel = self.absolute_floor, self.relative_floor
         names = self._names
         nan, sqrt, erfc, exp, log1p = math.nan, math.sqrt, math.erfc, math.exp, math.log1p
-        for i, x in zip(idx, values):
+        for i, x, held_through in zip(idx, values, _NO_STEADY if steady is None else steady):
             n = count[i]
             if n == 0:
                 append(Evidence(nan, 0.0, 0.0, 0.0, False))
@@ -498,7 +535,7 @@ class SeasonalBaseline:
             stuck = 0.0
             p_stuck = 1.0
             q = 1.0
-            if x == x_last:
+            if repeats(x, x_last, held_through, run[i]):
                 # Repeat rate with half a repeat of prior evidence. Whether the feature can be
                 # stuck at all counts the run in progress (a value that has sat still for most
                 # of the recent windows is one that sits still); the run's chance is judged by
@@ -680,23 +717,27 @@ class SeasonalBaseline:
 
     # ------------------------------------------------------------------ learning
     def update(self, idx: Sequence[int], values: Sequence[float], at: float | None, *,
-               learn: bool = True, evidence: Sequence[Evidence] | None = None) -> None:
-        """Learn ``values`` at distinct positions ``idx``.
+               learn: bool = True, evidence: Sequence[Evidence] | None = None,
+               steady: Sequence[bool | None] | None = None) -> None:
+        """Learn ``values`` at distinct positions ``idx`` (``steady`` as for :meth:`compare`).
 
         With ``learn=False`` only the previous value and the repeat run are updated (the change
         and stuck evidence need consecutive values even while learning is frozen).
         ``evidence`` (from :meth:`compare`, same order) feeds the per-feature tail statistics
         and the running drift.
         """
+        if steady is not None and len(steady) != len(idx):
+            raise ValueError("steady must be as long as idx")
         f, ints = self._f, self._i
         last, run = f["last"], ints["run"]
         held, away = f["held"], ints["away"]
         if not learn:
             rep, rpend = f["rep"], f["rpend"]
-            for i, x in zip(idx, values):
+            for i, x, held_through in zip(idx, values, _NO_STEADY if steady is None else steady):
                 if ints["count"][i]:
-                    run[i] = run[i] + 1 if x == last[i] else 0
-                    if x == last[i]:
+                    same = repeats(x, last[i], held_through, run[i])
+                    run[i] = run[i] + 1 if same else 0
+                    if same:
                         held[i] = x
                     elif rpend[i]:
                         # The run ended while learning is frozen: its learnt repeats join the rate.
@@ -736,10 +777,11 @@ class SeasonalBaseline:
                 self._slot_alphas = (self.step, a_day, a_week)
         else:
             a_day = a_week = 0.0
-        if _c_update_loop is not None and type(idx) is list and type(values) is list:
+        if _c_update_loop is not None and type(idx) is list and type(values) is list and (
+                steady is None or type(steady) is list):
             # The loop below in C (models/_baselinecore.c), the same statistics bit for bit.
             _c_update_loop(self, idx, values, at is not None, use_day, use_week, (hour, how, nh, nw, bw),
-                           a, keep, ks, kr, a_day, a_week)
+                           a, keep, ks, kr, a_day, a_week, steady)
             return
         level, lw, off_d, off_w = f["level"], f["lw"], f["off_day"], f["off_week"]
         err0, err1, err2, err1b = f["err0"], f["err1"], f["err2"], f["err1b"]
@@ -748,7 +790,7 @@ class SeasonalBaseline:
         rr, rrw, rpend = f["rr"], f["rrw"], f["rpend"]
         count = ints["count"]
         day, day_n, week, week_n = self._day, self._day_n, self._week, self._week_n
-        for i, x in zip(idx, values):
+        for i, x, held_through in zip(idx, values, _NO_STEADY if steady is None else steady):
             n = count[i]
             if n == 0:
                 level[i], lw[i], last[i], held[i] = x, 1.0, x, x
@@ -791,7 +833,7 @@ class SeasonalBaseline:
             x_last = last[i]
             dscale[i] += (abs(x - x_last) - dscale[i]) / wd
             dw[i] = wd
-            same = 1.0 if x == x_last else 0.0
+            same = 1.0 if repeats(x, x_last, held_through, run[i]) else 0.0
             # A repeat waits in ``rpend`` until its run ends (see ``stuck``); ``rep + rpend`` is
             # the repeat rate's EWMA counting every window.
             rep[i] = kr * rep[i]

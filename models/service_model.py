@@ -225,14 +225,19 @@ class ServiceModel:
         return self._alert_on
 
     # ------------------------------------------------------------------ scoring
-    def assess(self, features: dict[str, float], at: float | None = None) -> Assessment:
+    def assess(self, features: dict[str, float], at: float | None = None,
+               steady: Mapping[str, bool] | None = None) -> Assessment:
         """Score this window's features, update the alert state, then learn (unless alerting).
 
         Call it exactly once per closed window, in time order. ``features`` is not modified;
         non-finite values are treated as missing; feature order does not matter. ``at`` is the
-        window start in seconds since the Unix epoch (UTC), or None when unknown.
+        window start in seconds since the Unix epoch (UTC), or None when unknown. ``steady``
+        (optional) maps a feature whose metric was seen at least twice in the window to whether
+        it held one value throughout (as :func:`service.windows.window_features` reports it); it
+        sharpens the stuck-value evidence (:func:`models.seasonal.repeats`).
         """
         names, values = split_features(features)
+        held_through = None if not steady else [steady.get(name) for name in names]
         if at is not None:
             at = float(at)
             if not math.isfinite(at):
@@ -243,7 +248,7 @@ class ServiceModel:
                 baseline.observe_step(at - self._last_at)
             self._last_at = at
         idx = baseline.locate(names, add=True)
-        evidence = baseline.compare(idx, values, at)
+        evidence = baseline.compare(idx, values, at, held_through)
         contributors = self._contributors(names, values, evidence)
 
         p = 1.0
@@ -318,7 +323,7 @@ class ServiceModel:
             lesson, self._lesson = self._lesson, []
             baseline.learn_tail([i for i, _, _ in lesson],
                                 [Evidence(math.nan, z, 0.0, 0.0, True, drift=d) for _, z, d in lesson])
-        baseline.update(idx, values, at, learn=learn, evidence=evidence)
+        baseline.update(idx, values, at, learn=learn, evidence=evidence, steady=held_through)
         if learn and path is not None:
             if ready_t:
                 # Nothing between scoring and here changes the trees: a score already taken is

@@ -293,9 +293,10 @@ class Engine:
         for service, window in closed:
             settings = registry.settings(service)
             model = registry.model(service, owner)
-            features = window_features(window, settings.features)
+            steady: dict[str, bool] = {}
+            features = window_features(window, settings.features, steady)
             try:
-                assessment = model.assess(features, at=window.start)
+                assessment = model.assess(features, at=window.start, steady=steady)
             except Exception as exc:  # noqa: BLE001 - one service's model must not stop the fleet's scoring
                 self._model_failed(service, window, exc)
                 continue

@@ -261,12 +261,20 @@ def _names_of(aggregate: str) -> dict[str, str]:
 _NAMES_BY_AGGREGATE: dict[str, dict[str, str]] = {}
 
 
-def window_features(window: Window, specs: tuple) -> dict[str, float]:
+def window_features(window: Window, specs: tuple, steady: dict[str, bool] | None = None) -> dict[str, float]:
     """The feature mapping of a closed window under a rule's feature specs.
 
-    >>> w = Window(0.0, 60.0); w.count = 2; w.values = {"x": [1.0, 3.0]}
-    >>> window_features(w, (FeatureSpec("*", "mean"), FeatureSpec("x", "max"), FeatureSpec(None, "count")))
-    {'x.mean': 2.0, 'x.max': 3.0, 'count': 2.0}
+    ``steady``, when given, is filled with each feature whose metric the window saw at least
+    twice, mapped to whether all those values were equal (the metric held still all window:
+    the model's stuck-value evidence, :func:`models.seasonal.repeats`). The message count and
+    the ``count`` aggregate have no such reading.
+
+    >>> w = Window(0.0, 60.0); w.count = 3; w.values = {"x": [1.0, 3.0, 2.0], "y": [4, 4.0, 4]}
+    >>> steady = {}
+    >>> window_features(w, (FeatureSpec("*", "mean"), FeatureSpec("x", "max"), FeatureSpec(None, "count")), steady)
+    {'x.mean': 2.0, 'y.mean': 4.0, 'x.max': 3.0, 'count': 3.0}
+    >>> steady
+    {'x.mean': False, 'y.mean': True, 'x.max': False}
     """
     out: dict[str, float] = {}
     aggs = window.values
@@ -285,16 +293,29 @@ def window_features(window: Window, specs: tuple) -> dict[str, float]:
                         name = feature_names(metric, aggregate)
                         if len(names) < 100_000:
                             names[metric] = name
-                    out[name] = float(sum(agg)) / len(agg)
+                    n = len(agg)
+                    out[name] = float(sum(agg)) / n
+                    if steady is not None and n > 1:
+                        # A moving metric's first and last values nearly always differ: one comparison, no scan.
+                        steady[name] = agg[-1] == agg[0] and agg.count(agg[0]) == n
             else:
                 for metric, agg in aggs.items():
-                    out[feature_names(metric, aggregate)] = _value(agg, aggregate)
+                    name = feature_names(metric, aggregate)
+                    out[name] = _value(agg, aggregate)
+                    if steady is not None and len(agg) > 1 and aggregate != "count":
+                        steady[name] = agg[-1] == agg[0] and agg.count(agg[0]) == len(agg)
         elif spec.is_exact:
             agg = aggs.get(glob)
             if agg is not None:
-                out[feature_names(glob, spec.aggregate)] = _value(agg, spec.aggregate)
+                name = feature_names(glob, spec.aggregate)
+                out[name] = _value(agg, spec.aggregate)
+                if steady is not None and len(agg) > 1 and spec.aggregate != "count":
+                    steady[name] = agg[-1] == agg[0] and agg.count(agg[0]) == len(agg)
         else:
             for metric, agg in aggs.items():
                 if fnmatchcase(metric, glob):
-                    out[feature_names(metric, spec.aggregate)] = _value(agg, spec.aggregate)
+                    name = feature_names(metric, spec.aggregate)
+                    out[name] = _value(agg, spec.aggregate)
+                    if steady is not None and len(agg) > 1 and spec.aggregate != "count":
+                        steady[name] = agg[-1] == agg[0] and agg.count(agg[0]) == len(agg)
     return out

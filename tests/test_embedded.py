@@ -246,3 +246,33 @@ def test_a_flood_of_new_service_names_is_bounded_and_every_message_accounted_for
     assert summary.accepted == 100 and summary.rejected == {"service_limit": 2900}
     assert summary.services == 100
     assert read_lines(rej)[0]["reason"] == "service_limit"
+
+
+def test_a_frozen_exporter_is_flagged_in_its_first_whole_windows(tmp_path):
+    # One service scraped every 60 s into 5-minute windows for three days; from 16:02 on day 3 its
+    # CPU reading repeats its last value (a frozen exporter), everything else stays normal. The
+    # engine hands the model each window's "held still all window" reading, so the first whole
+    # frozen window (16:05) already counts as a repeat, and the alert opens by its second (16:10).
+    import numpy as np
+
+    from service.timefmt import parse_rfc3339
+
+    rng = np.random.default_rng(11)
+    src, out = tmp_path / "in.jsonl", tmp_path / "scores.jsonl"
+    freeze = T0 + 2 * 86400 + 16 * 3600 + 120
+    cpu = None
+    with open(src, "wb") as f:
+        for k in range(3 * 1440):
+            ts = T0 + 60 * k
+            if ts < freeze or cpu is None:
+                cpu = round(0.3 + 0.02 * float(rng.normal()), 4)
+            f.write(orjson.dumps({"service": "ledger", "ts": ts, "metrics": {
+                "cpu": cpu, "lat": round(120 + 5 * float(rng.normal()), 1), "requests": int(rng.poisson(40))}}))
+            f.write(b"\n")
+    replay(parse_config('[defaults]\nwindow = "5m"\n'), str(src), str(out))
+    scores = read_lines(out)
+    flagged = [parse_rfc3339(s["window_start"]) for s in scores if s["anomalous"]]
+    first_whole = freeze - 120 + 300
+    assert flagged and first_whole <= flagged[0] <= first_whole + 300, (flagged[:3], first_whole)
+    hit = next(s for s in scores if parse_rfc3339(s["window_start"]) == flagged[0])
+    assert hit["contributors"][0]["metric"] == "cpu"

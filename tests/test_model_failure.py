@@ -25,11 +25,11 @@ def test_one_failing_model_leaves_the_other_services_scored_and_starts_afresh(mo
     original = ServiceModel.assess
     broken = {"on": True}
 
-    def assess(self, features, at=None):
+    def assess(self, features, at=None, steady=None):
         # A stand-in for a model bug: the berth-planner's model raises from its 5th window on, while on.
         if self.service == "berth-planner" and self.windows_seen >= 4 and broken["on"]:
             raise ZeroDivisionError("a bug in the model")
-        return original(self, features, at)
+        return original(self, features, at, steady)
 
     monkeypatch.setattr(ServiceModel, "assess", assess)
     scores: list[dict] = []
@@ -65,10 +65,10 @@ def test_one_failing_model_leaves_the_other_services_scored_and_starts_afresh(mo
 def test_a_replay_with_a_failing_model_finishes_and_writes_the_other_scores(monkeypatch, tmp_path):
     original = ServiceModel.assess
 
-    def assess(self, features, at=None):
+    def assess(self, features, at=None, steady=None):
         if self.service == "berth-planner":
             raise ValueError("always")
-        return original(self, features, at)
+        return original(self, features, at, steady)
 
     monkeypatch.setattr(ServiceModel, "assess", assess)
     src = tmp_path / "in.jsonl"

@@ -165,3 +165,23 @@ def test_values_keep_arrival_order_when_metrics_come_and_go_within_a_window():
     (window,) = sw.open["api"].values()
     assert window.count == len(msgs)
     assert list(window.values.items()) == list(want.items())
+
+
+def test_window_features_report_which_metrics_held_still_all_window() -> None:
+    w = Window(0.0, 300.0)
+    w.count = 4
+    w.values = {
+        "cpu": [0.31, 0.31, 0.31, 0.31],  # held still: a frozen exporter's window
+        "lat": [120.0, 131.5, 120.0],  # first and last equal, moved in between
+        "queue": [3, 3.0, 3],  # ints and floats alike
+        "temp": [21.5],  # seen once: no reading
+        "disk": [7.0, 8.0],
+    }
+    specs = (FeatureSpec("*", "mean"), FeatureSpec("cpu", "max"), FeatureSpec("d*", "last"),
+             FeatureSpec("queue", "count"), FeatureSpec(None, "count"))
+    steady: dict[str, bool] = {}
+    features = window_features(w, specs, steady)
+    assert steady == {"cpu.mean": True, "lat.mean": False, "queue.mean": True, "disk.mean": False,
+                      "cpu.max": True, "disk.last": False}
+    assert set(steady) < set(features)  # no reading for the message count, a count aggregate, or one value
+    assert window_features(w, specs) == features  # the readings change nothing else

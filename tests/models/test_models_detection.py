@@ -290,3 +290,43 @@ def test_the_blended_profile_is_a_continuous_line_through_every_slot_middle() ->
         assert abs(before[0] - after[0]) < 1e-5 and abs(before[1] - after[1]) < 1e-5
     quarter = read(T0 + 7 * 86400 - 900.0)  # Sunday 23:45: a quarter of the way to Monday 00:30
     assert np.isclose(quarter[1], 0.75 * week[167] + 0.25 * week[0])
+
+
+def scraped_windows(seed: int, n: int, freeze_at: int | None = None, per_window: int = 5):
+    """Window means and within-window readings of a metric scraped ``per_window`` times a window (four
+    decimals of a noisy utilisation); from scrape ``freeze_at`` on it repeats its last value."""
+    scrapes = cpu(seed, n * per_window)
+    if freeze_at is not None:
+        scrapes[freeze_at:] = scrapes[freeze_at - 1]
+    rows = scrapes.reshape(n, per_window)
+    return [float(r.mean()) for r in rows], [bool((r == r[0]).all()) for r in rows]
+
+
+def run_scraped(model, means, steady):
+    return [model.assess({"cpu.mean": m, "count": 5.0}, at=T0 + STEP * k,
+                         steady=None if s is None else {"cpu.mean": s})
+            for k, (m, s) in enumerate(zip(means, steady))]
+
+
+def test_a_frozen_exporter_scraped_several_times_a_window_is_caught_in_its_first_whole_windows() -> None:
+    # Frozen from the third scrape of window 600: window 600 is part moving, 601 the first whole
+    # frozen window. Read per window (equal means), the run needs two equal whole windows before it
+    # even starts (602); read within the window, 601 already held still all window, which a metric
+    # that moves at every scrape almost never does.
+    means, steady = scraped_windows(4, 700, freeze_at=600 * 5 + 2)
+    with_readings = run_scraped(build_model("svc", ModelSettings()), means, steady)
+    without = run_scraped(build_model("svc", ModelSettings()), means, [None] * len(means))
+    assert not any(r.anomalous for r in with_readings[100:600])
+    found = onsets(with_readings[100:])
+    assert len(found) == 1 and 601 <= 100 + found[0] <= 602
+    assert with_readings[100 + found[0]].contributors[0].feature == "cpu.mean"
+    assert 100 + onsets(without[100:])[0] > 100 + found[0]  # the per-window reading alone is later
+
+
+def test_a_metric_that_holds_still_within_every_window_is_never_stuck() -> None:
+    # An exporter that refreshes once a window: every window holds one value, and the next holds
+    # another. Holding still is its normal, so nothing is stuck and nothing alerts.
+    means = [float(v) for v in cpu(5, 1000)]
+    model = build_model("svc", ModelSettings())
+    results = run_scraped(model, means, [True] * len(means))
+    assert not any(r.anomalous for r in results[36:])

@@ -101,6 +101,20 @@ def test_path_matches_a_level_by_level_walk(walker: str, n_features: int, monkey
         np.testing.assert_array_equal(trees._path(v), want)
 
 
+def _steady(rng, names: list[str], feats: dict[str, float], before: dict[str, float]) -> list:
+    """A window's within-window readings (see models.seasonal.repeats): None for the count and for some
+    features (seen once), True where the value stayed put and now and then by chance (a run starting
+    mid-window at another value), otherwise False."""
+    out = []
+    for name in names:
+        r = rng.random()
+        if name == "count" or r < 0.2:
+            out.append(None)
+        else:
+            out.append(feats[name] == before.get(name) or r > 0.97)
+    return out
+
+
 def _fields(ev) -> tuple:
     return tuple((type(v), repr(v)) for v in (ev.expected, ev.z, ev.change, ev.stuck, ev.scorable, ev.p, ev.drift,
                                                ev.held))
@@ -108,7 +122,9 @@ def _fields(ev) -> tuple:
 
 @pytest.mark.parametrize("seed", [0, 1, 2])
 @pytest.mark.parametrize("timed", [True, False])
-def test_the_c_compare_gives_the_python_compare_s_evidence_bit_for_bit(seed: int, timed: bool) -> None:
+@pytest.mark.parametrize("with_steady", [False, True])
+def test_the_c_compare_gives_the_python_compare_s_evidence_bit_for_bit(seed: int, timed: bool,
+                                                                        with_steady: bool) -> None:
     from models import seasonal
 
     if seasonal._c_compare is None:
@@ -116,6 +132,7 @@ def test_the_c_compare_gives_the_python_compare_s_evidence_bit_for_bit(seed: int
     base = SeasonalBaseline(24.0)
     rng = np.random.default_rng(seed)
     compared = stuck = held = 0
+    before: dict[str, float] = {}
     # Three weeks of five-minute windows: both profiles come into use (two cycles each), and the
     # stream's spikes, repeats, held counter and stuck run reach every branch.
     for k, feats in enumerate(stream(seed, 21 * 288)):
@@ -124,14 +141,16 @@ def test_the_c_compare_gives_the_python_compare_s_evidence_bit_for_bit(seed: int
         if rng.random() < 0.1:
             names.pop(int(rng.integers(0, len(names))))  # a feature missing from a window
         values = [feats[n] for n in names]
+        steady = _steady(rng, names, feats, before) if with_steady else None
+        before = feats
         idx = base.locate(names, add=True)
-        fast = base.compare(idx, values, at)
-        slow = base._compare(idx, values, at)
+        fast = base.compare(idx, values, at, steady)
+        slow = base._compare(idx, values, at, steady)
         assert [_fields(e) for e in fast] == [_fields(e) for e in slow], k
         compared += len(fast)
         stuck += sum(e.stuck > 0.0 for e in fast)
         held += sum(e.held for e in fast)
-        base.update(idx, values, at, learn=rng.random() > 0.05, evidence=fast)
+        base.update(idx, values, at, learn=rng.random() > 0.05, evidence=fast, steady=steady)
     assert compared > 20000 and stuck > 10 and held > 100
 
 
@@ -179,7 +198,9 @@ def _state_bytes(base: SeasonalBaseline) -> dict:
 
 @pytest.mark.parametrize("seed", [0, 1, 2])
 @pytest.mark.parametrize("timed", [True, False])
-def test_the_c_update_learns_the_python_update_s_statistics_bit_for_bit(seed: int, timed: bool, monkeypatch) -> None:
+@pytest.mark.parametrize("with_steady", [False, True])
+def test_the_c_update_learns_the_python_update_s_statistics_bit_for_bit(seed: int, timed: bool, with_steady: bool,
+                                                                        monkeypatch) -> None:
     from models import seasonal
 
     if seasonal._c_update_loop is None:
@@ -187,6 +208,7 @@ def test_the_c_update_learns_the_python_update_s_statistics_bit_for_bit(seed: in
     c_loop = seasonal._c_update_loop
     fast, slow = SeasonalBaseline(24.0), SeasonalBaseline(24.0)
     rng = np.random.default_rng(seed)
+    before: dict[str, float] = {}
     for k, feats in enumerate(stream(seed, 21 * 288)):
         at = T0 + STEP * k if timed else None
         names = list(feats)
@@ -197,10 +219,12 @@ def test_the_c_update_learns_the_python_update_s_statistics_bit_for_bit(seed: in
             feats["late.mean"] = float(rng.standard_normal())
         values = [feats[n] for n in names]
         learn = rng.random() > 0.05
+        steady = _steady(rng, names, feats, before) if with_steady else None
+        before = feats
         for base, loop in ((fast, c_loop), (slow, None)):
             monkeypatch.setattr(seasonal, "_c_update_loop", loop)
             idx = base.locate(names, add=True)
-            base.update(idx, values, at, learn=learn, evidence=base.compare(idx, values, at))
+            base.update(idx, values, at, learn=learn, evidence=base.compare(idx, values, at, steady), steady=steady)
         if k % 997 == 0:
             assert _state_bytes(fast) == _state_bytes(slow), k
     assert _state_bytes(fast) == _state_bytes(slow)
