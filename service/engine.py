@@ -266,14 +266,14 @@ class Engine:
 
         Without this, one service's broken model would stop every other service's scoring, and a
         restart would meet the same model and the same error again. The window gets no score (a
-        made-up one would be worse); the service's model is dropped, so its next window starts a
-        fresh one (warming up again) and the first checkpoint or commit after that replaces the
-        saved state. Counted as ``tidewatch_model_failures_total``; logged at most once per service
-        and process, with the error.
+        made-up one would be worse); the service's model is replaced by a fresh one (warming up
+        again), which the next checkpoint or commit writes over the saved state, so a restart does
+        not restore the failing model. Counted as ``tidewatch_model_failures_total``; logged at most
+        once per service and process, with the error.
         """
         stats = self.stats
         stats.model_failures += 1
-        self.registry.drop(service)
+        self.registry.start_afresh(service, self.owner)
         logged = self._failures_logged
         if service not in logged and len(logged) < 10_000:
             logged.add(service)

@@ -386,6 +386,14 @@ class ModelRegistry:
             self._sync_gauges()
         self.dirty.discard(service)
 
+    def start_afresh(self, service: str, owner: Mapping[str, Any] | None = None) -> None:
+        """Replace a service's model (live or spilled) with a fresh one, marked changed: the next
+        checkpoint or changelog commit writes it over the saved state, so a restart does not bring
+        the old model back (used after a model fails, :meth:`service.engine.Engine._model_failed`)."""
+        self.drop(service)
+        self.model(service, owner)
+        self.dirty.add(service)
+
     def close(self) -> None:
         """Close the spill store (its temporary directory, if any, is removed)."""
         store = self.models.spill

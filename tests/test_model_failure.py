@@ -77,3 +77,35 @@ def test_a_replay_with_a_failing_model_finishes_and_writes_the_other_scores(monk
     summary = replay(CONFIG, str(src), str(out))
     services = {orjson.loads(x)["service"] for x in out.read_bytes().splitlines()}
     assert services == {"crew-roster"} and summary.windows == 10
+
+
+def test_the_saved_state_of_a_failing_model_is_replaced_at_the_next_checkpoint(monkeypatch, tmp_path):
+    # Without the replacement, a restart between the failure and the service's next scored window
+    # restored the failing model from the last checkpoint (it was only dropped from memory).
+    from service.checkpoint import CheckpointStore
+    from service.stats import RuntimeStats
+
+    original = ServiceModel.assess
+    broken = {"on": False}
+
+    def assess(self, features, at=None, steady=None):
+        if self.service == "berth-planner" and broken["on"]:
+            raise ZeroDivisionError("a bug in the model")
+        return original(self, features, at, steady)
+
+    monkeypatch.setattr(ServiceModel, "assess", assess)
+    eng = Engine(CONFIG, on_score=lambda *a: None, on_reject=lambda *a: None, now=lambda: T0 + 10_000.0)
+    src = eng.source("file")
+    store = CheckpointStore(tmp_path, stats=RuntimeStats())
+    lines = _lines(12)
+    eng.feed(src, lines[:2 * 3 * 8], lambda i: i)  # 8 minutes: 7 windows closed for each service
+    store.save(eng.registry.models, eng.registry.dirty, {})
+    eng.registry.dirty.clear()
+    assert store.load().models["berth-planner"].windows_seen == 7
+    broken["on"] = True
+    eng.feed(src, lines[2 * 3 * 8:], lambda i: i)
+    assert eng.stats.model_failures == 4
+    store.save(eng.registry.models, eng.registry.dirty, {})  # a delta: only what changed
+    restored = store.load().models
+    assert restored["berth-planner"].windows_seen == 0  # the fresh model, not the failing one
+    assert restored["crew-roster"].windows_seen == 11
