@@ -26,10 +26,10 @@ static struct {
 /* The statistics compare reads, in this order (each a list, one entry per feature position). */
 static const char *const FLOAT_NAMES[] = {"level", "off_day", "off_week", "err0", "err1", "err2", "ew", "ew2",
                                           "err1b", "dscale", "last", "rep", "repw", "rpend", "ez", "ez2", "ezw",
-                                          "rr", "rrw", "xr", "xw", "xn", "xe", "yr", "yw", "yn", "ye", "held"};
+                                          "rr", "rrw", "xr", "xw", "xn", "xe", "yr", "yw", "yn", "ye", "held", "sr"};
 enum {
     F_LEVEL, F_OFF_D, F_OFF_W, F_ERR0, F_ERR1, F_ERR2, F_EW, F_EW2, F_ERR1B, F_DSCALE, F_LAST, F_REP, F_REPW,
-    F_RPEND, F_EZ, F_EZ2, F_EZW, F_RR, F_RRW, F_XR, F_XW, F_XN, F_XE, F_YR, F_YW, F_YN, F_YE, F_HELD, N_FLOATS
+    F_RPEND, F_EZ, F_EZ2, F_EZW, F_RR, F_RRW, F_XR, F_XW, F_XN, F_XE, F_YR, F_YW, F_YN, F_YE, F_HELD, F_SR, N_FLOATS
 };
 static const char *const INT_NAMES[] = {"count", "run", "away"};
 enum { I_COUNT, I_RUN, I_AWAY, N_INTS };
@@ -226,12 +226,13 @@ fail:
 
 /* compare(baseline, idx, values, use_day, use_week, blend, Evidence, tail_deviate) -> list of Evidence */
 /* models.seasonal.repeats: whether this window repeats the one before (1, 0, or -1 with an error set).
- * `steady` is None (no within-window reading: equal values), or whether the metric held one value all window. */
-static int repeats(double x, double x_last, PyObject *steady, long run) {
+ * `steady` is None (no within-window reading: equal values), or whether the metric held one value all window;
+ * `steady_rare`: whether it does so in fewer than STUCK_MAX_RATE of windows. */
+static int repeats(double x, double x_last, PyObject *steady, long run, int steady_rare) {
     if (steady == Py_None) return x == x_last;
     int held_through = PyObject_IsTrue(steady);
     if (held_through < 0) return -1;
-    return held_through && (run == 0 || x == x_last);
+    return held_through && (x == x_last || (run == 0 && steady_rare));
 }
 
 /* The optional `steady` list of compare and update_loop: None, or a list as long as idx. */
@@ -364,7 +365,8 @@ static PyObject *compare(PyObject *module, PyObject *const *args, Py_ssize_t nar
         double rep = FV(F_REP, i), repw = FV(F_REPW, i), rpend = FV(F_RPEND, i);
         long run = PyLong_AsLong(PyList_GET_ITEM(il[I_RUN], i));
         if (PyErr_Occurred()) goto fail;
-        int same = repeats(x, x_last, steady == Py_None ? Py_None : PyList_GET_ITEM(steady, j), run);
+        int same = repeats(x, x_last, steady == Py_None ? Py_None : PyList_GET_ITEM(steady, j), run,
+                           (FV(F_SR, i) + 0.5) / (repw + 1.0) < K.stuck_max_rate);
         if (same < 0) goto fail;
         if (same) {
             q = (rep + K.stuck_prior_repeats) / (repw + 1.0);
@@ -438,10 +440,10 @@ done:
 /* The statistics update_loop writes, in this order. */
 static const char *const UPDATE_NAMES[] = {"level", "lw", "off_day", "off_week", "err0", "err1", "err2", "err1b",
                                            "ew", "ew2", "dscale", "dw", "rep", "repw", "rr", "rrw", "rpend",
-                                           "last", "held"};
+                                           "last", "held", "sr"};
 enum {
     U_LEVEL, U_LW, U_OFF_D, U_OFF_W, U_ERR0, U_ERR1, U_ERR2, U_ERR1B, U_EW, U_EW2, U_DSCALE, U_DW, U_REP, U_REPW,
-    U_RR, U_RRW, U_RPEND, U_LAST, U_HELD, N_UPDATE
+    U_RR, U_RRW, U_RPEND, U_LAST, U_HELD, U_SR, N_UPDATE
 };
 static PyObject *update_keys[N_UPDATE];
 
@@ -570,8 +572,12 @@ static PyObject *update_loop(PyObject *module, PyObject *const *args, Py_ssize_t
         long run = PyLong_AsLong(PyList_GET_ITEM(il[I_RUN], i));
         long away = PyLong_AsLong(PyList_GET_ITEM(il[I_AWAY], i));
         if (PyErr_Occurred()) failed = 1;
-        int repeated = failed ? 0 : repeats(x, x_last, steady == Py_None ? Py_None : PyList_GET_ITEM(steady, j), run);
-        if (repeated < 0) failed = 1;
+        PyObject *held_through = steady == Py_None ? Py_None : PyList_GET_ITEM(steady, j);
+        double sr = UV(U_SR, i);
+        if (PyErr_Occurred()) failed = 1;
+        int repeated = failed ? 0 : repeats(x, x_last, held_through, run, (sr + 0.5) / (repw + 1.0) < K.stuck_max_rate);
+        int steady_now = failed ? 0 : PyObject_IsTrue(held_through);
+        if (repeated < 0 || steady_now < 0) failed = 1;
         if (!failed) {
             err0 += (fabs(x - p0) - err0) / w;
             err1 += (fabs(x - s1) - err1) / w;
@@ -584,6 +590,8 @@ static PyObject *update_loop(PyObject *module, PyObject *const *args, Py_ssize_t
             rep = kr * rep;
             rpend = kr * rpend + same;
             repw = kr * repw + 1.0;
+            /* How often the metric holds still all window (see SeasonalBaseline.update). */
+            sr = kr * sr + (steady_now ? 1.0 : 0.0);
             if (!same) {
                 rep += rpend;
                 rpend = 0.0;
@@ -604,7 +612,8 @@ static PyObject *update_loop(PyObject *module, PyObject *const *args, Py_ssize_t
                      set_float(ul[U_EW], i, w) < 0 || set_float(ul[U_EW2], i, ew2) < 0 ||
                      set_float(ul[U_DSCALE], i, dscale) < 0 || set_float(ul[U_DW], i, wd) < 0 ||
                      set_float(ul[U_REP], i, rep) < 0 || set_float(ul[U_RPEND], i, rpend) < 0 ||
-                     set_float(ul[U_REPW], i, repw) < 0 || set_long(il[I_RUN], i, run) < 0 ||
+                     set_float(ul[U_REPW], i, repw) < 0 || set_float(ul[U_SR], i, sr) < 0 ||
+                     set_long(il[I_RUN], i, run) < 0 ||
                      set_float(ul[U_HELD], i, held) < 0 || set_long(il[I_AWAY], i, away) < 0 ||
                      set_float(ul[U_LAST], i, x) < 0 || set_float(ul[U_LEVEL], i, level) < 0 ||
                      set_float(ul[U_LW], i, wl) < 0;

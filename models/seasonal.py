@@ -155,6 +155,11 @@ NEW_INTS_IN_FORMAT_4 = ("away",)
 #: already in the rate, as they were counted then) and the second as the stepped profile's error
 #: (so the stepped profile stays in use until the blended one has done better).
 NEW_IN_FORMAT_5 = ("rpend", "err1b")
+#: Statistics added by model state format 7: how often the feature's metric held one value through a
+#: whole window (an EWMA like the repeat rate's, see :func:`repeats`). A format-6 state reads it as
+#: the limit :data:`STUCK_MAX_RATE` (not known to be rare), so an upgraded model starts runs at a
+#: window that held still only once it has seen that such windows are rare for that metric.
+NEW_IN_FORMAT_7 = ("sr",)
 #: Prior weight, in windows, of "a run continues as often as a repeat starts" (see ``stuck``).
 STUCK_PRIOR_RUNS = 2.0
 #: Prior repeats in the rate that judges a run (with one window of prior weight): a whole repeat
@@ -252,25 +257,30 @@ def blend_of(at: float) -> tuple[int, int, int, int, float]:
 _NO_STEADY = itertools.repeat(None)
 
 
-def repeats(x: float, x_last: float, steady: bool | None, run: int) -> bool:
+def repeats(x: float, x_last: float, steady: bool | None, run: int, steady_rare: bool) -> bool:
     """Whether a window counts as a repeat of the one before, for the ``stuck`` evidence.
 
     Without within-window information (``steady`` None: the window saw the metric once, or the
     feature is the message count) a repeat is the same value as the previous window's. When the
-    window saw its metric at least twice, a repeat is a window that held one value throughout
-    (``steady`` True): the first such window starts a run, and the run goes on while the windows
-    keep holding that same value. A frozen exporter is then caught in its first whole window
-    rather than its second, and judged by how often the metric holds still for a whole window,
-    which for a metric scraped several times a window is far rarer than two equal means.
+    window saw its metric at least twice, a repeat must also have held that one value throughout
+    (``steady`` True); and for a metric that rarely holds still for a whole window
+    (``steady_rare``: in fewer than :data:`STUCK_MAX_RATE` of windows), the first window that
+    does starts a run even though its mean differs from the window before (that one was still
+    moving in part). A frozen exporter is then caught in its first whole window rather than its
+    second, and judged by how often the metric holds still for a whole window and then repeats,
+    which for a metric that moves at every scrape is far rarer than two equal means. A metric
+    refreshed once a window holds still in every window; for it only equal windows repeat.
 
-    >>> repeats(3.0, 3.0, None, 0), repeats(3.0, 2.5, True, 0), repeats(3.0, 2.5, True, 1)
+    >>> repeats(3.0, 3.0, None, 0, True), repeats(3.0, 2.5, True, 0, True), repeats(3.0, 2.5, True, 1, True)
     (True, True, False)
-    >>> repeats(3.0, 3.0, False, 4)       # equal means, but the metric moved within the window
+    >>> repeats(3.0, 3.0, False, 4, True)        # equal means, but the metric moved within the window
     False
+    >>> repeats(3.0, 2.5, True, 0, False), repeats(3.0, 3.0, True, 0, False)   # holds still every window
+    (False, True)
     """
     if steady is None:
         return x == x_last
-    return steady and (run == 0 or x == x_last)
+    return bool(steady) and (x == x_last or (run == 0 and steady_rare))
 
 
 def tail_deviate(p: float) -> float:
@@ -347,7 +357,7 @@ class SeasonalBaseline:
 
     _FLOATS = ("level", "lw", "off_day", "off_week", "err0", "err1", "err2", "ew", "ew2",
                "dscale", "dw", "rep", "repw", "last", "xr", "xw", "xn", "xe") + NEW_IN_FORMAT_3 \
-        + NEW_IN_FORMAT_4 + NEW_IN_FORMAT_5
+        + NEW_IN_FORMAT_4 + NEW_IN_FORMAT_5 + NEW_IN_FORMAT_7
     _INTS = ("count", "run") + NEW_INTS_IN_FORMAT_4
 
     __slots__ = ("half_life", "alpha", "absolute_floor", "relative_floor", "_names", "_index",
@@ -454,7 +464,7 @@ class SeasonalBaseline:
         err0, err1, err2, ew, ew2 = f["err0"], f["err1"], f["err2"], f["ew"], f["ew2"]
         err1b = f["err1b"]
         dscale, last, rep, repw = f["dscale"], f["last"], f["rep"], f["repw"]
-        rpend = f["rpend"]
+        rpend, sr = f["rpend"], f["sr"]
         ez, ez2, ezw = f["ez"], f["ez2"], f["ezw"]
         rr, rrw = f["rr"], f["rrw"]
         xr, xw, xn, xe = f["xr"], f["xw"], f["xn"], f["xe"]
@@ -535,7 +545,7 @@ class SeasonalBaseline:
             stuck = 0.0
             p_stuck = 1.0
             q = 1.0
-            if repeats(x, x_last, held_through, run[i]):
+            if repeats(x, x_last, held_through, run[i], (sr[i] + 0.5) / (repw[i] + 1.0) < STUCK_MAX_RATE):
                 # Repeat rate with half a repeat of prior evidence. Whether the feature can be
                 # stuck at all counts the run in progress (a value that has sat still for most
                 # of the recent windows is one that sits still); the run's chance is judged by
@@ -735,7 +745,8 @@ class SeasonalBaseline:
             rep, rpend = f["rep"], f["rpend"]
             for i, x, held_through in zip(idx, values, _NO_STEADY if steady is None else steady):
                 if ints["count"][i]:
-                    same = repeats(x, last[i], held_through, run[i])
+                    same = repeats(x, last[i], held_through, run[i],
+                                   (f["sr"][i] + 0.5) / (f["repw"][i] + 1.0) < STUCK_MAX_RATE)
                     run[i] = run[i] + 1 if same else 0
                     if same:
                         held[i] = x
@@ -787,7 +798,7 @@ class SeasonalBaseline:
         err0, err1, err2, err1b = f["err0"], f["err1"], f["err2"], f["err1b"]
         ks2 = ks * ks
         ew, ew2, dscale, dw, rep, repw = f["ew"], f["ew2"], f["dscale"], f["dw"], f["rep"], f["repw"]
-        rr, rrw, rpend = f["rr"], f["rrw"], f["rpend"]
+        rr, rrw, rpend, sr = f["rr"], f["rrw"], f["rpend"], f["sr"]
         count = ints["count"]
         day, day_n, week, week_n = self._day, self._day_n, self._week, self._week_n
         for i, x, held_through in zip(idx, values, _NO_STEADY if steady is None else steady):
@@ -833,7 +844,10 @@ class SeasonalBaseline:
             x_last = last[i]
             dscale[i] += (abs(x - x_last) - dscale[i]) / wd
             dw[i] = wd
-            same = 1.0 if repeats(x, x_last, held_through, run[i]) else 0.0
+            same = 1.0 if repeats(x, x_last, held_through, run[i],
+                                  (sr[i] + 0.5) / (repw[i] + 1.0) < STUCK_MAX_RATE) else 0.0
+            # How often the metric holds still all window: same pace as the repeat rate (and its weight).
+            sr[i] = kr * sr[i] + (1.0 if held_through else 0.0)
             # A repeat waits in ``rpend`` until its run ends (see ``stuck``); ``rep + rpend`` is
             # the repeat rate's EWMA counting every window.
             rep[i] = kr * rep[i]
@@ -937,6 +951,7 @@ class SeasonalBaseline:
         lack :data:`NEW_IN_FORMAT_4` and :data:`NEW_INTS_IN_FORMAT_4`: the held value starts as
         the last value and the count of windows away from it at 0. All three lack
         :data:`NEW_IN_FORMAT_5`: no repeats wait (those of a run in progress are in the rate).
+        Formats up to 6 lack :data:`NEW_IN_FORMAT_7`: it starts at the limit (see there).
         """
         if upgrade and isinstance(state, Mapping) and isinstance(state.get("names"), list):
             missing = {k: np.zeros(len(state["names"])) for k in NEW_IN_FORMAT_3 + NEW_IN_FORMAT_5
@@ -948,6 +963,8 @@ class SeasonalBaseline:
                 missing["held"] = state["last"].copy()
             if "err1b" not in state and isinstance(state.get("err1"), np.ndarray):
                 missing["err1b"] = state["err1"].copy()
+            if "sr" not in state and isinstance(state.get("repw"), np.ndarray):
+                missing["sr"] = STUCK_MAX_RATE * (state["repw"] + 1.0)
             state = {**state, **missing}
         try:
             base = cls(state["half_life"], absolute_floor=state["absolute_floor"],

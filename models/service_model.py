@@ -123,11 +123,13 @@ _TREE_PARTS = ("level", "change")
 #: progress, kept out of the repeat rate until the run ends (:data:`models.seasonal.NEW_IN_FORMAT_5`);
 #: 6 the tail probabilities of the last two windows (``alert.recent_p``, for the two-of-three
 #: evidence) and the open alert's first-window deviations still to be counted in the tails
-#: (``alert.lesson_at``, ``alert.lesson``). Formats 2 to 5 still load, with the missing
-#: statistics at the values of a feature that is where it was, no recent windows (``recent_p``
-#: of 1.0: nothing rare) and no lesson waiting (an older state's open alert already taught it).
-_STATE_FORMAT = 6
-_READABLE_FORMATS = (2, 3, 4, 5, 6)
+#: (``alert.lesson_at``, ``alert.lesson``); 7 how often each feature's metric held still through a
+#: whole window (:data:`models.seasonal.NEW_IN_FORMAT_7`). Formats 2 to 6 still load, with the
+#: missing statistics at the values of a feature that is where it was, no recent windows
+#: (``recent_p`` of 1.0: nothing rare), no lesson waiting (an older state's open alert already
+#: taught it) and windows that hold still not known to be rare.
+_STATE_FORMAT = 7
+_READABLE_FORMATS = (2, 3, 4, 5, 6, 7)
 
 
 @dataclass(slots=True)

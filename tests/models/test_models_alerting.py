@@ -195,12 +195,12 @@ def test_a_format_5_state_loads_with_no_recent_windows_and_no_lesson_waiting() -
     a = build_model("svc", ModelSettings())
     assess_all(a, x[:506])
     state = a.to_state()
-    assert state["format"] == 6 and state["alert"]["lesson"].shape == (2, 2)  # lat.mean, count
+    assert state["format"] == 7 and state["alert"]["lesson"].shape == (2, 2)  # lat.mean, count
     old = dict(state, format=5, alert={k: v for k, v in state["alert"].items()
                                        if k not in ("recent_p", "lesson_at", "lesson")})
     b = ServiceModel.from_state(old)
     assert (b._p_earlier, b._p_before, b._lesson) == (1.0, 1.0, [])
-    assert b.to_state()["format"] == 6
+    assert b.to_state()["format"] == 7
     bad = dict(state, alert={**state["alert"], "recent_p": np.array([0.5, 1.5])})
     with pytest.raises(CorruptState):
         ServiceModel.from_state(bad)

@@ -80,7 +80,7 @@ def test_a_format_2_state_loads_with_fresh_drift_statistics() -> None:
     restored = ServiceModel.from_state(old)
     for k in NEW_IN_FORMAT_3:
         assert restored._baseline._f[k] == [0.0] * len(restored._baseline.features)
-    assert restored.to_state()["format"] == 6
+    assert restored.to_state()["format"] == 7
     # It keeps scoring: same predictions as the model it came from.
     ev_a = model._baseline.evidence_one({"cpu.mean": 0.3})["cpu.mean"]
     ev_b = restored._baseline.evidence_one({"cpu.mean": 0.3})["cpu.mean"]
@@ -151,13 +151,13 @@ def test_a_format_3_state_loads_with_the_held_value_at_the_last_value() -> None:
     counter[200] = 0.2
     with_counter(model, cpu(11, 300), counter)
     state = model.to_state()
-    assert state["format"] == 6
+    assert state["format"] == 7
     dropped = set(NEW_IN_FORMAT_4) | set(NEW_INTS_IN_FORMAT_4)
     old = dict(state, format=3, baseline={k: v for k, v in state["baseline"].items() if k not in dropped})
     restored = ServiceModel.from_state(old)
     base = restored._baseline
     assert base._f["held"] == base._f["last"] and base._i["away"] == [0] * len(base.features)
-    assert restored.to_state()["format"] == 6
+    assert restored.to_state()["format"] == 7
     feats = {"cpu.mean": 0.31, "restarts.mean": 0.0, "count": 5.0}
     at = T0 + STEP * 300
     assert model.assess(dict(feats), at=at).score == restored.assess(dict(feats), at=at).score
@@ -263,7 +263,7 @@ def test_a_format_4_state_loads_with_nothing_waiting_and_the_stepped_profile_in_
     base = restored._baseline
     assert base._f["rpend"] == [0.0] * len(base.features)
     assert base._f["err1b"] == base._f["err1"]
-    assert restored.to_state()["format"] == 6
+    assert restored.to_state()["format"] == 7
     a = restored.assess({"cpu.mean": 0.31, "count": 5.0}, at=T0 + STEP * 400)
     assert 0.0 <= a.score <= 1.0
 
@@ -323,10 +323,31 @@ def test_a_frozen_exporter_scraped_several_times_a_window_is_caught_in_its_first
     assert 100 + onsets(without[100:])[0] > 100 + found[0]  # the per-window reading alone is later
 
 
-def test_a_metric_that_holds_still_within_every_window_is_never_stuck() -> None:
+def test_a_metric_refreshed_once_a_window_is_judged_by_equal_windows() -> None:
     # An exporter that refreshes once a window: every window holds one value, and the next holds
-    # another. Holding still is its normal, so nothing is stuck and nothing alerts.
+    # another. Holding still all window is its normal, so that alone starts no run (nothing alerts);
+    # when it freezes, equal windows still tell, as they did before within-window readings.
     means = [float(v) for v in cpu(5, 1000)]
+    means[900:] = [means[899]] * 100
     model = build_model("svc", ModelSettings())
     results = run_scraped(model, means, [True] * len(means))
-    assert not any(r.anomalous for r in results[36:])
+    assert not any(r.anomalous for r in results[36:900])
+    found = onsets(results[36:])
+    assert len(found) == 1 and 900 <= 36 + found[0] <= 903
+    assert results[36 + found[0]].contributors[0].feature == "cpu.mean"
+
+
+def test_a_format_6_state_loads_with_windows_that_hold_still_not_known_to_be_rare() -> None:
+    from models.seasonal import NEW_IN_FORMAT_7, STUCK_MAX_RATE
+
+    model = build_model("svc", ModelSettings())
+    means, steady = scraped_windows(14, 400)
+    run_scraped(model, means, steady)
+    state = model.to_state()
+    assert state["format"] == 7
+    old = dict(state, format=6, baseline={k: v for k, v in state["baseline"].items() if k not in NEW_IN_FORMAT_7})
+    restored = ServiceModel.from_state(old)
+    base = restored._baseline
+    assert base._f["sr"] == [STUCK_MAX_RATE * (w + 1.0) for w in base._f["repw"]]
+    assert model._baseline._f["sr"][0] < 1.0  # learnt: the metric moves at every scrape
+    assert restored.to_state()["format"] == 7
