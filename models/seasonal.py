@@ -37,8 +37,9 @@ scale so they can be compared and squashed alike:
   repeats join the repeat rate only when it ends, so a frozen exporter does not make its own
   run look routine while it is being judged. A feature that often repeats (a counter that sits
   at 0, counting the run in progress) gives none. When the caller knows that the window saw the
-  metric several times (``steady``, see :func:`repeats`), a repeat is a window that held one value
-  throughout, so a frozen exporter's first whole window counts;
+  metric several times (``steady``, see :func:`repeats`), a repeat must also have held one value
+  throughout, and for a metric that rarely does so the first such window starts a run: a frozen
+  exporter's first whole window counts;
 * ``drift`` -- an EWMA of the clipped ``z`` over its own learned scale: a deviation too small to
   alert in any one window that persists (a slow leak, a level that creeps) grows it.
 
