@@ -657,14 +657,115 @@ done:
     return result;
 }
 
+/* The statistics learn_evidence writes: the two tails, then the running drift. */
+static const char *const LEARN_NAMES[] = {"xr", "xw", "xn", "xe", "yr", "yw", "yn", "ye", "ez", "ez2", "ezw"};
+enum { L_XR, L_XW, L_XN, L_XE, L_YR, L_YW, L_YN, L_YE, L_EZ, L_EZ2, L_EZW, N_LEARN };
+static PyObject *learn_keys[N_LEARN];
+
+/* One attribute of an Evidence as a double (-1.0 with an error set when it is not a number). */
+static double ev_double(PyObject *ev, PyObject *name) {
+    PyObject *v = PyObject_GetAttr(ev, name);
+    if (v == NULL) return -1.0;
+    double d = as_double(v);
+    Py_DECREF(v);
+    return d;
+}
+
+static int ev_flag(PyObject *ev, PyObject *name) {
+    PyObject *v = PyObject_GetAttr(ev, name);
+    if (v == NULL) return -1;
+    int t = PyObject_IsTrue(v);
+    Py_DECREF(v);
+    return t;
+}
+
+/* learn_evidence(baseline, idx, evidence, k, kd, drift): SeasonalBaseline.learn_tail with forgetting factor k and,
+ * with drift, the running-drift update of SeasonalBaseline.update (factor kd), in place. Each feature's statistics
+ * depend on that feature alone, so one pass does what the two Python loops do one after the other. */
+static PyObject *learn_evidence(PyObject *module, PyObject *const *args, Py_ssize_t nargs) {
+    if (nargs != 6) {
+        PyErr_SetString(PyExc_TypeError, "learn_evidence(baseline, idx, evidence, k, kd, drift)");
+        return NULL;
+    }
+    if (!K.ready) {
+        PyErr_SetString(PyExc_RuntimeError, "configure() first");
+        return NULL;
+    }
+    PyObject *base = args[0], *idx = args[1], *evs = args[2];
+    double k = PyFloat_AsDouble(args[3]), kd = PyFloat_AsDouble(args[4]);
+    int with_drift = PyObject_IsTrue(args[5]);
+    if (with_drift < 0 || PyErr_Occurred()) return NULL;
+    if (!PyList_CheckExact(idx) || !PyList_CheckExact(evs) || PyList_GET_SIZE(idx) != PyList_GET_SIZE(evs)) {
+        PyErr_SetString(PyExc_TypeError, "idx and evidence: lists of one length");
+        return NULL;
+    }
+    PyObject *ll[N_LEARN], *il[N_INTS];
+    Baseline bl;
+    if (baseline_acquire(base, &bl, learn_keys, LEARN_NAMES, N_LEARN, ll, il) < 0) return NULL;
+    PyObject *result = NULL;
+    Py_ssize_t n = PyList_GET_SIZE(idx);
+#define LV(key, i) as_double(PyList_GET_ITEM(ll[key], (i)))
+    for (Py_ssize_t j = 0; j < n; j++) {
+        Py_ssize_t i = PyLong_AsSsize_t(PyList_GET_ITEM(idx, j));
+        if (i == -1 && PyErr_Occurred()) goto done;
+        if (i < 0 || i >= bl.n_feat) {
+            PyErr_SetString(PyExc_IndexError, "feature position out of range");
+            goto done;
+        }
+        PyObject *ev = PyList_GET_ITEM(evs, j);
+        int scorable = ev_flag(ev, s_scorable);
+        if (scorable < 0) goto done;
+        if (!scorable) continue;
+        int held = ev_flag(ev, s_held);
+        if (held < 0) goto done;
+        double z = ev_double(ev, s_z);
+        if (z == -1.0 && PyErr_Occurred()) goto done;
+        if (!held) {
+            double drift = ev_double(ev, s_drift);
+            if (drift == -1.0 && PyErr_Occurred()) goto done;
+            /* A held feature's change has no measured size (see HOLD_RATE): it teaches no tail. */
+            double excess = fabs(z) - K.tail_level;
+            int hit = excess > 0.0;
+            double xr = k * LV(L_XR, i) + (hit ? 1.0 : 0.0), xw = k * LV(L_XW, i) + 1.0;
+            double xn = k * LV(L_XN, i) + (hit ? 1.0 : 0.0), xe = k * LV(L_XE, i) + (hit ? excess : 0.0);
+            excess = fabs(drift) - K.tail_level;
+            hit = excess > 0.0;
+            double yr = k * LV(L_YR, i) + (hit ? 1.0 : 0.0), yw = k * LV(L_YW, i) + 1.0;
+            double yn = k * LV(L_YN, i) + (hit ? 1.0 : 0.0), ye = k * LV(L_YE, i) + (hit ? excess : 0.0);
+            if (PyErr_Occurred() || set_float(ll[L_XR], i, xr) < 0 || set_float(ll[L_XW], i, xw) < 0 ||
+                set_float(ll[L_XN], i, xn) < 0 || set_float(ll[L_XE], i, xe) < 0 || set_float(ll[L_YR], i, yr) < 0 ||
+                set_float(ll[L_YW], i, yw) < 0 || set_float(ll[L_YN], i, yn) < 0 || set_float(ll[L_YE], i, ye) < 0)
+                goto done;
+        }
+        if (with_drift) {
+            double zc = z > K.drift_clip ? K.drift_clip : z < -K.drift_clip ? -K.drift_clip : z;
+            double ez = LV(L_EZ, i);
+            ez += K.drift_lambda * (zc - ez);
+            double ez2 = kd * LV(L_EZ2, i) + ez * ez, ezw = kd * LV(L_EZW, i) + 1.0;
+            if (PyErr_Occurred() || set_float(ll[L_EZ], i, ez) < 0 || set_float(ll[L_EZ2], i, ez2) < 0 ||
+                set_float(ll[L_EZW], i, ezw) < 0)
+                goto done;
+        }
+    }
+#undef LV
+    result = Py_None;
+    Py_INCREF(result);
+done:
+    baseline_release(&bl);
+    return result;
+}
+
 static PyMethodDef baselinecore_functions[] = {
     {"configure", configure, METH_O, "configure(constants): the constants of models.seasonal, once at import."},
     {"compare", (PyCFunction)(void (*)(void))compare, METH_FASTCALL,
-     "compare(baseline, idx, values, use_day, use_week, blend, Evidence, tail_deviate): "
+     "compare(baseline, idx, values, use_day, use_week, blend, Evidence, tail_deviate, steady): "
      "SeasonalBaseline.compare's list of Evidence."},
     {"update_loop", (PyCFunction)(void (*)(void))update_loop, METH_FASTCALL,
-     "update_loop(baseline, idx, values, timed, use_day, use_week, blend, a, keep, ks, kr, a_day, a_week): "
+     "update_loop(baseline, idx, values, timed, use_day, use_week, blend, a, keep, ks, kr, a_day, a_week, steady): "
      "the learning loop of SeasonalBaseline.update, in place."},
+    {"learn_evidence", (PyCFunction)(void (*)(void))learn_evidence, METH_FASTCALL,
+     "learn_evidence(baseline, idx, evidence, k, kd, drift): SeasonalBaseline.learn_tail and, with drift, the "
+     "running drift of SeasonalBaseline.update, in place."},
     {NULL, NULL, 0, NULL},
 };
 
@@ -696,6 +797,8 @@ PyMODINIT_FUNC PyInit__baselinecore(void) {
         if ((int_keys[k] = PyUnicode_InternFromString(INT_NAMES[k])) == NULL) return NULL;
     for (int k = 0; k < N_UPDATE; k++)
         if ((update_keys[k] = PyUnicode_InternFromString(UPDATE_NAMES[k])) == NULL) return NULL;
+    for (int k = 0; k < N_LEARN; k++)
+        if ((learn_keys[k] = PyUnicode_InternFromString(LEARN_NAMES[k])) == NULL) return NULL;
 #define NAME(var, text) \
     if ((var = PyUnicode_InternFromString(text)) == NULL) return NULL;
     NAME(s_f, "_f")

@@ -16,6 +16,7 @@
  */
 #define PY_SSIZE_T_CLEAN
 #include <Python.h>
+#include <math.h>
 #include <stdint.h>
 #include <string.h>
 
@@ -208,6 +209,116 @@ fail_v:
     return NULL;
 }
 
+/* score_path(r_mass, path, trees, height, size_limit) -> int: the integer mass sum of HalfSpaceTrees._score_path
+ * for one window. Node k of a tree's path adds mass << k, and the walk stops after the first node whose mass is
+ * under size_limit. Masses of uint8 or uint16 only (the caller keeps wider ones in Python): then the sum fits in
+ * 64 bits for any height <= 24 and up to 65536 trees, so it is exact, as Python's integers are. */
+static PyObject *score_path(PyObject *module, PyObject *args) {
+    PyObject *o_mass, *o_path;
+    Py_ssize_t trees, height;
+    double limit;
+    if (!PyArg_ParseTuple(args, "OOnnd", &o_mass, &o_path, &trees, &height, &limit)) return NULL;
+    if (trees < 1 || trees > 65536 || height < 1 || height > 24) {
+        PyErr_SetString(PyExc_ValueError, "1 <= trees <= 65536, 1 <= height <= 24");
+        return NULL;
+    }
+    Py_buffer vm, vp;
+    if (PyObject_GetBuffer(o_mass, &vm, PyBUF_C_CONTIGUOUS | PyBUF_FORMAT) < 0) return NULL;
+    const char *mf = vm.format ? vm.format : "B";
+    int msize = (int)vm.itemsize;
+    Py_ssize_t n_nodes = ((Py_ssize_t)2 << height) - 1;
+    if (vm.len != trees * n_nodes * msize || !((msize == 1 && strcmp(mf, "B") == 0) || (msize == 2 && strcmp(mf, "H") == 0))) {
+        PyErr_SetString(PyExc_ValueError, "r_mass must be contiguous uint8 or uint16 of shape (trees, nodes)");
+        PyBuffer_Release(&vm);
+        return NULL;
+    }
+    if (get_buffer(o_path, &vp, "intp", trees * (height + 1), 0) < 0) {
+        PyBuffer_Release(&vm);
+        return NULL;
+    }
+    const Py_ssize_t *path = vp.buf, size = trees * n_nodes;
+    unsigned long long total = 0;
+    int bad = 0;
+    for (Py_ssize_t t = 0; t < trees && !bad; t++) {
+        const Py_ssize_t *row = path + t * (height + 1);
+        for (Py_ssize_t k = 0; k <= height; k++) {
+            Py_ssize_t at = row[k];
+            if (at < 0 || at >= size) {
+                bad = 1;
+                break;
+            }
+            unsigned long long mass = msize == 1 ? ((const uint8_t *)vm.buf)[at] : ((const uint16_t *)vm.buf)[at];
+            total += mass << k;
+            if ((double)mass < limit) break;
+        }
+    }
+    PyBuffer_Release(&vp);
+    PyBuffer_Release(&vm);
+    if (bad) {
+        PyErr_SetString(PyExc_IndexError, "a path node is outside the mass array");
+        return NULL;
+    }
+    return PyLong_FromUnsignedLongLong(total);
+}
+
+/* history_learn(sorted, ring, size, head, raw) -> (size, head): EmpiricalCalibrator.learn (models/calibration.py),
+ * the history of the trees' raw scores, in place. Once the ring is full, the oldest value's leftmost copy leaves the
+ * sorted array (searchsorted "left"); the new value goes in after any equal ones (searchsorted "right"). A binary
+ * search with the same comparisons finds the same positions, so both arrays end up bit for bit as numpy's. */
+static PyObject *history_learn(PyObject *module, PyObject *args) {
+    PyObject *o_sorted, *o_ring;
+    Py_ssize_t size, head;
+    double raw;
+    if (!PyArg_ParseTuple(args, "OOnnd", &o_sorted, &o_ring, &size, &head, &raw)) return NULL;
+    if (isnan(raw)) {
+        PyErr_SetString(PyExc_ValueError, "cannot add a NaN raw score to the calibration history");
+        return NULL;
+    }
+    Py_buffer vs, vr;
+    if (PyObject_GetBuffer(o_ring, &vr, PyBUF_C_CONTIGUOUS | PyBUF_FORMAT | PyBUF_WRITABLE) < 0) return NULL;
+    Py_ssize_t capacity = vr.len / 8;
+    if (vr.itemsize != 8 || strcmp(vr.format ? vr.format : "B", "d") != 0 || capacity < 1) {
+        PyErr_SetString(PyExc_ValueError, "ring must be contiguous float64");
+        PyBuffer_Release(&vr);
+        return NULL;
+    }
+    if (get_buffer(o_sorted, &vs, "float64", capacity, 1) < 0) {
+        PyBuffer_Release(&vr);
+        return NULL;
+    }
+    if (size < 0 || size > capacity || head < 0 || head >= capacity) {
+        PyErr_SetString(PyExc_ValueError, "size and head must lie within the capacity");
+        PyBuffer_Release(&vs);
+        PyBuffer_Release(&vr);
+        return NULL;
+    }
+    double *s = vs.buf, *ring = vr.buf;
+    Py_ssize_t n = size;
+    if (n == capacity) {
+        double old = ring[head];
+        Py_ssize_t lo = 0, hi = n; /* first index with s[i] >= old */
+        while (lo < hi) {
+            Py_ssize_t mid = lo + (hi - lo) / 2;
+            if (s[mid] < old) lo = mid + 1;
+            else hi = mid;
+        }
+        if (lo < n - 1) memmove(s + lo, s + lo + 1, (size_t)(n - 1 - lo) * sizeof(double));
+        n -= 1;
+    }
+    Py_ssize_t lo = 0, hi = n; /* first index with s[i] > raw */
+    while (lo < hi) {
+        Py_ssize_t mid = lo + (hi - lo) / 2;
+        if (raw < s[mid]) hi = mid;
+        else lo = mid + 1;
+    }
+    if (lo < n) memmove(s + lo + 1, s + lo, (size_t)(n - lo) * sizeof(double));
+    s[lo] = raw;
+    ring[head] = raw;
+    PyBuffer_Release(&vs);
+    PyBuffer_Release(&vr);
+    return Py_BuildValue("nn", n + 1, (head + 1) % capacity);
+}
+
 static PyMethodDef hstcore_functions[] = {
     {"draw_padded", draw_padded, METH_VARARGS,
      "draw_padded(draws, low, high, trees, height, padding, feature_out, threshold_out): the padded rule's "
@@ -215,6 +326,11 @@ static PyMethodDef hstcore_functions[] = {
     {"walk", walk, METH_VARARGS,
      "walk(v, feature, threshold, trees, height, n_nodes, path_out): the flat node index at every depth of "
      "every tree for the vector v, into path_out of shape (trees, height + 1)."},
+    {"history_learn", history_learn, METH_VARARGS,
+     "history_learn(sorted, ring, size, head, raw) -> (size, head): EmpiricalCalibrator.learn in place."},
+    {"score_path", score_path, METH_VARARGS,
+     "score_path(r_mass, path, trees, height, size_limit) -> int: the mass sum of one window's path (node k adds "
+     "mass << k; the walk stops after the first node under size_limit)."},
     {NULL, NULL, 0, NULL},
 };
 

@@ -33,7 +33,18 @@ from typing import Any
 
 import numpy as np
 
+from models.base import PURE_PYTHON
 from models.errors import CorruptState, ModelError, SettingsError
+
+try:
+    # EmpiricalCalibrator.learn's two searches and moves as one C call (models/_hstcore.c, beside the trees whose
+    # scores it calibrates): the same arrays bit for bit; absent without a C compiler at install, off with
+    # TIDEWATCH_PURE_PYTHON=1.
+    from models._hstcore import history_learn as _c_history_learn
+except ImportError:  # pragma: no cover - depends on the install
+    _c_history_learn = None
+if PURE_PYTHON:
+    _c_history_learn = None
 
 __all__ = ["PAIR_DEPENDENCE", "SCORE_POWER", "EmpiricalCalibrator", "TailCalibrator", "pair_tail",
            "surprise_score"]
@@ -98,6 +109,9 @@ class EmpiricalCalibrator:
         raw = float(raw)
         if math.isnan(raw):
             raise ModelError("cannot add a NaN raw score to the calibration history")
+        if _c_history_learn is not None:
+            self._size, self._head = _c_history_learn(self._sorted, self._ring, self._size, self._head, raw)
+            return
         s, n = self._sorted, self._size
         if n == self.capacity:
             old = self._ring[self._head]

@@ -64,11 +64,12 @@ try:
     # results as _draw_padded and _path's Python walk; absent where the install had no C compiler, off
     # with TIDEWATCH_PURE_PYTHON=1.
     from models._hstcore import draw_padded as _c_draw_padded
+    from models._hstcore import score_path as _c_score_path
     from models._hstcore import walk as _c_walk
 except ImportError:  # pragma: no cover - depends on the install
-    _c_draw_padded = _c_walk = None
+    _c_draw_padded = _c_score_path = _c_walk = None
 if PURE_PYTHON:
-    _c_draw_padded = _c_walk = None
+    _c_draw_padded = _c_score_path = _c_walk = None
 
 __all__ = ["HalfSpaceTrees", "SPLIT_RULES"]
 
@@ -436,8 +437,13 @@ class HalfSpaceTrees:
             # size). The same integer sum, so the same float: node ``k`` of a tree adds
             # ``mass << k``, and the walk stops after the first node under the size limit.
             limit = self.size_limit
+            r_mass = self._r_mass
+            if _c_score_path is not None and r_mass.itemsize <= 2 and path.dtype == np.intp:
+                # The same integer sum in C (models/_hstcore.c): exact, so the same float below.
+                total = _c_score_path(r_mass, np.ascontiguousarray(path), self.n_trees, self.height, limit)
+                return 1.0 - total / self.max_score
             total = 0
-            for row in self._r_mass.ravel()[path].tolist():
+            for row in r_mass.ravel()[path].tolist():
                 k = 0
                 for mass in row:
                     total += mass << k

@@ -206,7 +206,7 @@ except ImportError:  # pragma: no cover - depends on the install
     _baselinecore = None
 if PURE_PYTHON:
     _baselinecore = None
-_c_compare = _c_update_loop = None
+_c_compare = _c_update_loop = _c_learn_evidence = None
 if _baselinecore is not None:
     _baselinecore.configure({
         "PREFER_SIMPLER": PREFER_SIMPLER, "MAD_TO_SD": MAD_TO_SD, "Z_LIMIT": Z_LIMIT,
@@ -218,6 +218,7 @@ if _baselinecore is not None:
     })
     _c_compare = _baselinecore.compare
     _c_update_loop = _baselinecore.update_loop
+    _c_learn_evidence = _baselinecore.learn_evidence
 
 
 def slots_of(at: float) -> tuple[int, int]:
@@ -630,6 +631,10 @@ class SeasonalBaseline:
         """
         f = self._f
         k = 0.5 ** (1.0 / (TAIL_FACTOR * self.half_life))
+        if _c_learn_evidence is not None and type(idx) is list and type(evidence) is list:
+            # The loop below in C (models/_baselinecore.c), the same statistics bit for bit.
+            _c_learn_evidence(self, idx, evidence, k, 0.0, False)
+            return
         # Both tails ("x": |z|, "y": |drift|) in one pass; they are separate statistics.
         xr, xw, xn, xe = f["xr"], f["xw"], f["xn"], f["xe"]
         yr, yw, yn, ye = f["yr"], f["yw"], f["yn"], f["ye"]
@@ -761,9 +766,14 @@ class SeasonalBaseline:
                 last[i] = x
             return
         if evidence is not None:
+            kd = 0.5 ** (1.0 / (SCALE_FACTOR * self.half_life))
+            if _c_learn_evidence is not None and type(idx) is list and type(evidence) is list:
+                # learn_tail and the loop below in one C pass (models/_baselinecore.c), the same statistics.
+                _c_learn_evidence(self, idx, evidence, 0.5 ** (1.0 / (TAIL_FACTOR * self.half_life)), kd, True)
+                evidence = None  # learnt
+        if evidence is not None:
             self.learn_tail(idx, evidence)
             ez, ez2, ezw = f["ez"], f["ez2"], f["ezw"]
-            kd = 0.5 ** (1.0 / (SCALE_FACTOR * self.half_life))
             for i, ev in zip(idx, evidence):
                 if ev.scorable:
                     z = ev.z

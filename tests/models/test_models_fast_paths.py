@@ -60,9 +60,17 @@ def test_compare_matches_the_prediction_and_tail_helpers(seed: int) -> None:
     assert checked > 1000
 
 
-def test_single_path_score_matches_the_batch_score() -> None:
+@pytest.mark.parametrize("scorer", ["c", "python"])
+def test_single_path_score_matches_the_batch_score(scorer: str, monkeypatch) -> None:
+    from models import hst
+
+    if scorer == "c" and hst._c_score_path is None:
+        pytest.skip("built without the C extension")
+    if scorer == "python":
+        monkeypatch.setattr(hst, "_c_score_path", None)
     rng = np.random.default_rng(4)
-    for height, window in ((1, 2), (3, 5), (8, 36)):
+    # Window sizes up to 300 give uint16 masses as well as uint8 ones; the C sum takes both.
+    for height, window in ((1, 2), (3, 5), (8, 36), (4, 300)):
         trees = HalfSpaceTrees(6, height, window, seed=height)
         trees.build([f"f{i}" for i in range(5)])
         for k in range(4 * window + 3):
@@ -205,7 +213,7 @@ def test_the_c_update_learns_the_python_update_s_statistics_bit_for_bit(seed: in
 
     if seasonal._c_update_loop is None:
         pytest.skip("built without the C extension")
-    c_loop = seasonal._c_update_loop
+    c_loop, c_learn = seasonal._c_update_loop, seasonal._c_learn_evidence
     fast, slow = SeasonalBaseline(24.0), SeasonalBaseline(24.0)
     rng = np.random.default_rng(seed)
     before: dict[str, float] = {}
@@ -221,10 +229,36 @@ def test_the_c_update_learns_the_python_update_s_statistics_bit_for_bit(seed: in
         learn = rng.random() > 0.05
         steady = _steady(rng, names, feats, before) if with_steady else None
         before = feats
-        for base, loop in ((fast, c_loop), (slow, None)):
+        for base, loop, learn_c in ((fast, c_loop, c_learn), (slow, None, None)):
             monkeypatch.setattr(seasonal, "_c_update_loop", loop)
+            monkeypatch.setattr(seasonal, "_c_learn_evidence", learn_c)  # the tails and the drift too
             idx = base.locate(names, add=True)
-            base.update(idx, values, at, learn=learn, evidence=base.compare(idx, values, at, steady), steady=steady)
+            evidence = base.compare(idx, values, at, steady)
+            base.update(idx, values, at, learn=learn, evidence=evidence, steady=steady)
+            if k % 101 == 7:
+                base.learn_tail(idx, evidence)  # as an alert's first window is taught when the alert ends
         if k % 997 == 0:
             assert _state_bytes(fast) == _state_bytes(slow), k
     assert _state_bytes(fast) == _state_bytes(slow)
+
+
+@pytest.mark.parametrize("capacity", [1, 2, 7, 1000])
+def test_the_c_history_learn_keeps_the_python_learn_s_arrays_bit_for_bit(capacity: int, monkeypatch) -> None:
+    from models import calibration
+    from models.calibration import EmpiricalCalibrator
+
+    if calibration._c_history_learn is None:
+        pytest.skip("built without the C extension")
+    c_learn = calibration._c_history_learn
+    fast, slow = EmpiricalCalibrator(capacity), EmpiricalCalibrator(capacity)
+    rng = np.random.default_rng(capacity)
+    # Ties (rounded values), signed zeros and a run of one value: where a search's side decides the position.
+    values = np.concatenate([np.round(rng.normal(size=3 * capacity + 50), 1), [0.0, -0.0] * 20, [1.5] * 30,
+                             rng.exponential(size=200)])
+    for k, raw in enumerate(values.tolist()):
+        for cal, learn in ((fast, c_learn), (slow, None)):
+            monkeypatch.setattr(calibration, "_c_history_learn", learn)
+            cal.learn(raw)
+        assert (fast._size, fast._head) == (slow._size, slow._head), k
+        assert fast._sorted.tobytes() == slow._sorted.tobytes() and fast._ring.tobytes() == slow._ring.tobytes(), k
+    assert fast._size == capacity
