@@ -285,6 +285,25 @@ def repeats(x: float, x_last: float, steady: bool | None, run: int, steady_rare:
     return bool(steady) and (x == x_last or (run == 0 and steady_rare))
 
 
+_BLEND_NONE = (0, 0, 0, 0, 0.0)
+# The last (at, blend_of(at)), one tuple so that reading it is atomic: compare and update of a window (and every
+# service closing at the same time) ask for the same ``at``.
+_blend_last: tuple[float, tuple[int, int, int, int, float]] = (math.nan, _BLEND_NONE)
+
+
+def _blend_at(at: float | None) -> tuple[int, int, int, int, float]:
+    """:func:`blend_of` of ``at`` (no blend without a time), remembered for the next call with the same time."""
+    global _blend_last
+    if at is None:
+        return _BLEND_NONE
+    last = _blend_last
+    if last[0] == at:
+        return last[1]
+    blend = blend_of(at)
+    _blend_last = (at, blend)
+    return blend
+
+
 def tail_deviate(p: float) -> float:
     """Normal deviate whose upper tail probability is ``p`` (0 for ``p >= 0.5``).
 
@@ -447,7 +466,7 @@ class SeasonalBaseline:
             # The loop below in C (models/_baselinecore.c), the same evidence bit for bit.
             use_day, use_week = self._cycles(at)
             return _c_compare(self, idx, values, use_day, use_week,
-                              blend_of(at) if at is not None else (0, 0, 0, 0, 0.0), Evidence, tail_deviate,
+                              _blend_at(at), Evidence, tail_deviate,
                               steady)
         return self._compare(idx, values, at, steady)
 
@@ -474,7 +493,7 @@ class SeasonalBaseline:
         count, run = ints["count"], ints["run"]
         held, away_n = f["held"], ints["away"]
         use_day, use_week = self._cycles(at)
-        hour, how, nh, nw, bw = blend_of(at) if at is not None else (0, 0, 0, 0, 0.0)
+        hour, how, nh, nw, bw = _blend_at(at)
         day, day_n, week, week_n = self._day, self._day_n, self._week, self._week_n
         floor_abs, floor_rel = self.absolute_floor, self.relative_floor
         names = self._names
@@ -692,7 +711,7 @@ class SeasonalBaseline:
                   ) -> list[tuple[float, float, float]]:
         """``x - prediction`` for each of the three predictions (zeros for an unlearned feature)."""
         use_day, use_week = self._cycles(at)
-        blend = blend_of(at) if at is not None else (0, 0, 0, 0, 0.0)
+        blend = _blend_at(at)
         out = []
         for i, x in zip(idx, values):
             if self._i["count"][i] == 0:
@@ -785,7 +804,7 @@ class SeasonalBaseline:
             if math.isnan(self.first_at):
                 self.first_at = at
         use_day, use_week = self._cycles(at)
-        hour, how, nh, nw, bw = blend_of(at) if at is not None else (0, 0, 0, 0, 0.0)
+        hour, how, nh, nw, bw = _blend_at(at)
         a = self.alpha
         keep = 1.0 - a
         ks = 0.5 ** (1.0 / (SCALE_FACTOR * self.half_life))
