@@ -319,6 +319,51 @@ static PyObject *history_learn(PyObject *module, PyObject *args) {
     return Py_BuildValue("nn", n + 1, (head + 1) % capacity);
 }
 
+/* learn_path(l_mass, path, trees, height): HalfSpaceTrees._learn_path's ``l_mass.ravel()[path] += 1`` for one
+ * window's path (its nodes are distinct, so the fancy-indexed add is one increment each), masses of uint8, uint16
+ * or uint32. A mass never exceeds the window size its type was chosen for, so nothing wraps. */
+static PyObject *learn_path(PyObject *module, PyObject *args) {
+    PyObject *o_mass, *o_path;
+    Py_ssize_t trees, height;
+    if (!PyArg_ParseTuple(args, "OOnn", &o_mass, &o_path, &trees, &height)) return NULL;
+    if (trees < 1 || height < 1 || height > 24) {
+        PyErr_SetString(PyExc_ValueError, "trees >= 1, 1 <= height <= 24");
+        return NULL;
+    }
+    Py_buffer vm, vp;
+    if (PyObject_GetBuffer(o_mass, &vm, PyBUF_C_CONTIGUOUS | PyBUF_FORMAT | PyBUF_WRITABLE) < 0) return NULL;
+    const char *mf = vm.format ? vm.format : "B";
+    int msize = (int)vm.itemsize;
+    Py_ssize_t size = trees * (((Py_ssize_t)2 << height) - 1);
+    if (vm.len != size * msize || !((msize == 1 && strcmp(mf, "B") == 0) || (msize == 2 && strcmp(mf, "H") == 0) ||
+                                    (msize == 4 && strcmp(mf, "I") == 0))) {
+        PyErr_SetString(PyExc_ValueError, "l_mass must be contiguous uint8, uint16 or uint32 of shape (trees, nodes)");
+        PyBuffer_Release(&vm);
+        return NULL;
+    }
+    if (get_buffer(o_path, &vp, "intp", trees * (height + 1), 0) < 0) {
+        PyBuffer_Release(&vm);
+        return NULL;
+    }
+    const Py_ssize_t *path = vp.buf, n = trees * (height + 1);
+    for (Py_ssize_t k = 0; k < n; k++) {
+        if (path[k] < 0 || path[k] >= size) {
+            PyBuffer_Release(&vp);
+            PyBuffer_Release(&vm);
+            PyErr_SetString(PyExc_IndexError, "a path node is outside the mass array");
+            return NULL;
+        }
+    }
+    for (Py_ssize_t k = 0; k < n; k++) {
+        if (msize == 1) ((uint8_t *)vm.buf)[path[k]] += 1;
+        else if (msize == 2) ((uint16_t *)vm.buf)[path[k]] += 1;
+        else ((uint32_t *)vm.buf)[path[k]] += 1;
+    }
+    PyBuffer_Release(&vp);
+    PyBuffer_Release(&vm);
+    Py_RETURN_NONE;
+}
+
 static PyMethodDef hstcore_functions[] = {
     {"draw_padded", draw_padded, METH_VARARGS,
      "draw_padded(draws, low, high, trees, height, padding, feature_out, threshold_out): the padded rule's "
@@ -328,6 +373,8 @@ static PyMethodDef hstcore_functions[] = {
      "every tree for the vector v, into path_out of shape (trees, height + 1)."},
     {"history_learn", history_learn, METH_VARARGS,
      "history_learn(sorted, ring, size, head, raw) -> (size, head): EmpiricalCalibrator.learn in place."},
+    {"learn_path", learn_path, METH_VARARGS,
+     "learn_path(l_mass, path, trees, height): one window's path counted in the latest masses, in place."},
     {"score_path", score_path, METH_VARARGS,
      "score_path(r_mass, path, trees, height, size_limit) -> int: the mass sum of one window's path (node k adds "
      "mass << k; the walk stops after the first node under size_limit)."},

@@ -64,12 +64,13 @@ try:
     # results as _draw_padded and _path's Python walk; absent where the install had no C compiler, off
     # with TIDEWATCH_PURE_PYTHON=1.
     from models._hstcore import draw_padded as _c_draw_padded
+    from models._hstcore import learn_path as _c_learn_path
     from models._hstcore import score_path as _c_score_path
     from models._hstcore import walk as _c_walk
 except ImportError:  # pragma: no cover - depends on the install
-    _c_draw_padded = _c_score_path = _c_walk = None
+    _c_draw_padded = _c_learn_path = _c_score_path = _c_walk = None
 if PURE_PYTHON:
-    _c_draw_padded = _c_score_path = _c_walk = None
+    _c_draw_padded = _c_learn_path = _c_score_path = _c_walk = None
 
 __all__ = ["HalfSpaceTrees", "SPLIT_RULES"]
 
@@ -465,7 +466,11 @@ class HalfSpaceTrees:
         return 1.0 - total / self.max_score
 
     def _learn_path(self, path: np.ndarray) -> None:
-        self._l_mass.ravel()[path] += 1  # a view: the mass arrays are C-contiguous
+        if (_c_learn_path is not None and path.ndim == 2 and path.dtype == np.intp and self._l_mass.itemsize <= 4
+                and path.flags.c_contiguous):
+            _c_learn_path(self._l_mass, path, self.n_trees, self.height)  # the same increments, in C
+        else:
+            self._l_mass.ravel()[path] += 1  # a view: the mass arrays are C-contiguous
         self.counter += 1
         if self.counter == self.window_size:
             self._r_mass[...] = self._l_mass

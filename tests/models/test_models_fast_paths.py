@@ -262,3 +262,23 @@ def test_the_c_history_learn_keeps_the_python_learn_s_arrays_bit_for_bit(capacit
         assert (fast._size, fast._head) == (slow._size, slow._head), k
         assert fast._sorted.tobytes() == slow._sorted.tobytes() and fast._ring.tobytes() == slow._ring.tobytes(), k
     assert fast._size == capacity
+
+
+def test_the_c_learn_path_counts_the_masses_numpy_counts(monkeypatch) -> None:
+    from models import hst
+
+    if hst._c_learn_path is None:
+        pytest.skip("built without the C extension")
+    c_learn = hst._c_learn_path
+    rng = np.random.default_rng(9)
+    for height, window in ((1, 2), (3, 5), (8, 36), (4, 300)):  # uint8 and uint16 masses
+        fast, slow = (HalfSpaceTrees(6, height, window, seed=height) for _ in range(2))
+        for trees in (fast, slow):
+            trees.build([f"f{i}" for i in range(5)])
+        for k in range(3 * window + 5):  # across mass-window swaps
+            v = rng.random(5) if k % 3 else np.full(5, 0.5)
+            for trees, learn in ((fast, c_learn), (slow, None)):
+                monkeypatch.setattr(hst, "_c_learn_path", learn)
+                trees._learn_path(trees._path(v))
+            assert fast._l_mass.tobytes() == slow._l_mass.tobytes() and fast._r_mass.tobytes() == slow._r_mass.tobytes()
+            assert (fast.counter, fast.ready) == (slow.counter, slow.ready)
