@@ -261,6 +261,16 @@ def _names_of(aggregate: str) -> dict[str, str]:
 _NAMES_BY_AGGREGATE: dict[str, dict[str, str]] = {}
 
 
+def _held_still(values: list) -> bool:
+    """Whether every value of a metric in a window (at least two) is the same.
+
+    >>> _held_still([3, 3.0, 3]), _held_still([1.0, 2.0, 1.0])
+    (True, False)
+    """
+    # A moving metric's first and last values nearly always differ: one comparison, no scan.
+    return values[-1] == values[0] and values.count(values[0]) == len(values)
+
+
 def window_features(window: Window, specs: tuple, steady: dict[str, bool] | None = None) -> dict[str, float]:
     """The feature mapping of a closed window under a rule's feature specs.
 
@@ -296,26 +306,25 @@ def window_features(window: Window, specs: tuple, steady: dict[str, bool] | None
                     n = len(agg)
                     out[name] = float(sum(agg)) / n
                     if steady is not None and n > 1:
-                        # A moving metric's first and last values nearly always differ: one comparison, no scan.
-                        steady[name] = agg[-1] == agg[0] and agg.count(agg[0]) == n
+                        steady[name] = agg[-1] == agg[0] and agg.count(agg[0]) == n  # _held_still, inline
             else:
                 for metric, agg in aggs.items():
                     name = feature_names(metric, aggregate)
                     out[name] = _value(agg, aggregate)
                     if steady is not None and len(agg) > 1 and aggregate != "count":
-                        steady[name] = agg[-1] == agg[0] and agg.count(agg[0]) == len(agg)
+                        steady[name] = _held_still(agg)
         elif spec.is_exact:
             agg = aggs.get(glob)
             if agg is not None:
                 name = feature_names(glob, spec.aggregate)
                 out[name] = _value(agg, spec.aggregate)
                 if steady is not None and len(agg) > 1 and spec.aggregate != "count":
-                    steady[name] = agg[-1] == agg[0] and agg.count(agg[0]) == len(agg)
+                    steady[name] = _held_still(agg)
         else:
             for metric, agg in aggs.items():
                 if fnmatchcase(metric, glob):
                     name = feature_names(metric, spec.aggregate)
                     out[name] = _value(agg, spec.aggregate)
                     if steady is not None and len(agg) > 1 and spec.aggregate != "count":
-                        steady[name] = agg[-1] == agg[0] and agg.count(agg[0]) == len(agg)
+                        steady[name] = _held_still(agg)
     return out
