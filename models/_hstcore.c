@@ -209,6 +209,30 @@ fail_v:
     return NULL;
 }
 
+/* The masses (uint8, uint16 and, if widest is 4, uint32; shape (trees, nodes)) and one window's path (intp, shape
+ * (trees, height + 1)) of score_path and learn_path. Returns the masses' item size, or -1 with an error set and
+ * nothing held. */
+static int get_mass_path(PyObject *o_mass, PyObject *o_path, Py_buffer *vm, Py_buffer *vp, Py_ssize_t trees,
+                         Py_ssize_t height, int writable, int widest) {
+    if (PyObject_GetBuffer(o_mass, vm, PyBUF_C_CONTIGUOUS | PyBUF_FORMAT | (writable ? PyBUF_WRITABLE : 0)) < 0)
+        return -1;
+    const char *mf = vm->format ? vm->format : "B";
+    int msize = (int)vm->itemsize;
+    Py_ssize_t size = trees * (((Py_ssize_t)2 << height) - 1);
+    if (vm->len != size * msize || !((msize == 1 && strcmp(mf, "B") == 0) || (msize == 2 && strcmp(mf, "H") == 0) ||
+                                     (widest >= 4 && msize == 4 && strcmp(mf, "I") == 0))) {
+        PyErr_SetString(PyExc_ValueError, widest >= 4 ? "masses must be contiguous uint8, uint16 or uint32 of shape (trees, nodes)"
+                                                      : "masses must be contiguous uint8 or uint16 of shape (trees, nodes)");
+        PyBuffer_Release(vm);
+        return -1;
+    }
+    if (get_buffer(o_path, vp, "intp", trees * (height + 1), 0) < 0) {
+        PyBuffer_Release(vm);
+        return -1;
+    }
+    return msize;
+}
+
 /* score_path(r_mass, path, trees, height, size_limit) -> int: the integer mass sum of HalfSpaceTrees._score_path
  * for one window. Node k of a tree's path adds mass << k, and the walk stops after the first node whose mass is
  * under size_limit. Masses of uint8 or uint16 only (the caller keeps wider ones in Python): then the sum fits in
@@ -223,20 +247,9 @@ static PyObject *score_path(PyObject *module, PyObject *args) {
         return NULL;
     }
     Py_buffer vm, vp;
-    if (PyObject_GetBuffer(o_mass, &vm, PyBUF_C_CONTIGUOUS | PyBUF_FORMAT) < 0) return NULL;
-    const char *mf = vm.format ? vm.format : "B";
-    int msize = (int)vm.itemsize;
-    Py_ssize_t n_nodes = ((Py_ssize_t)2 << height) - 1;
-    if (vm.len != trees * n_nodes * msize || !((msize == 1 && strcmp(mf, "B") == 0) || (msize == 2 && strcmp(mf, "H") == 0))) {
-        PyErr_SetString(PyExc_ValueError, "r_mass must be contiguous uint8 or uint16 of shape (trees, nodes)");
-        PyBuffer_Release(&vm);
-        return NULL;
-    }
-    if (get_buffer(o_path, &vp, "intp", trees * (height + 1), 0) < 0) {
-        PyBuffer_Release(&vm);
-        return NULL;
-    }
-    const Py_ssize_t *path = vp.buf, size = trees * n_nodes;
+    int msize = get_mass_path(o_mass, o_path, &vm, &vp, trees, height, 0, 2);
+    if (msize < 0) return NULL;
+    const Py_ssize_t *path = vp.buf, size = trees * (((Py_ssize_t)2 << height) - 1);
     unsigned long long total = 0;
     int bad = 0;
     for (Py_ssize_t t = 0; t < trees && !bad; t++) {
@@ -331,21 +344,9 @@ static PyObject *learn_path(PyObject *module, PyObject *args) {
         return NULL;
     }
     Py_buffer vm, vp;
-    if (PyObject_GetBuffer(o_mass, &vm, PyBUF_C_CONTIGUOUS | PyBUF_FORMAT | PyBUF_WRITABLE) < 0) return NULL;
-    const char *mf = vm.format ? vm.format : "B";
-    int msize = (int)vm.itemsize;
-    Py_ssize_t size = trees * (((Py_ssize_t)2 << height) - 1);
-    if (vm.len != size * msize || !((msize == 1 && strcmp(mf, "B") == 0) || (msize == 2 && strcmp(mf, "H") == 0) ||
-                                    (msize == 4 && strcmp(mf, "I") == 0))) {
-        PyErr_SetString(PyExc_ValueError, "l_mass must be contiguous uint8, uint16 or uint32 of shape (trees, nodes)");
-        PyBuffer_Release(&vm);
-        return NULL;
-    }
-    if (get_buffer(o_path, &vp, "intp", trees * (height + 1), 0) < 0) {
-        PyBuffer_Release(&vm);
-        return NULL;
-    }
-    const Py_ssize_t *path = vp.buf, n = trees * (height + 1);
+    int msize = get_mass_path(o_mass, o_path, &vm, &vp, trees, height, 1, 4);
+    if (msize < 0) return NULL;
+    const Py_ssize_t *path = vp.buf, n = trees * (height + 1), size = trees * (((Py_ssize_t)2 << height) - 1);
     for (Py_ssize_t k = 0; k < n; k++) {
         if (path[k] < 0 || path[k] >= size) {
             PyBuffer_Release(&vp);

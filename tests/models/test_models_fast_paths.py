@@ -282,3 +282,34 @@ def test_the_c_learn_path_counts_the_masses_numpy_counts(monkeypatch) -> None:
                 trees._learn_path(trees._path(v))
             assert fast._l_mass.tobytes() == slow._l_mass.tobytes() and fast._r_mass.tobytes() == slow._r_mass.tobytes()
             assert (fast.counter, fast.ready) == (slow.counter, slow.ready)
+
+
+def test_the_new_c_loops_refuse_arrays_of_the_wrong_shape_or_type() -> None:
+    # They write into and read from raw buffers: every size and index is checked before any is touched.
+    from models import _hstcore
+
+    mass = np.zeros((2, 7), dtype=np.uint8)  # 2 trees of height 2
+    path = np.zeros((2, 3), dtype=np.intp)
+    assert _hstcore.score_path(mass, path, 2, 2, 0.5) == 0
+    with pytest.raises(ValueError):
+        _hstcore.score_path(np.zeros((2, 6), dtype=np.uint8), path, 2, 2, 0.5)
+    with pytest.raises(ValueError):
+        _hstcore.score_path(mass.astype(np.uint32), path, 2, 2, 0.5)  # wider masses stay in Python
+    with pytest.raises(ValueError):
+        _hstcore.learn_path(mass, path[:, :2].copy(), 2, 2)
+    with pytest.raises(IndexError):
+        _hstcore.learn_path(mass, np.full((2, 3), 14, dtype=np.intp), 2, 2)
+    assert not mass.any()  # nothing was counted by the refused call
+    with pytest.raises((ValueError, BufferError)):
+        _hstcore.learn_path(mass[:, ::-1], path, 2, 2)  # not contiguous
+    frozen = np.zeros((2, 7), dtype=np.uint8)
+    frozen.setflags(write=False)
+    with pytest.raises((ValueError, BufferError)):
+        _hstcore.learn_path(frozen, path, 2, 2)  # read-only
+    ring, ordered = np.zeros(4), np.zeros(4)
+    with pytest.raises(ValueError):
+        _hstcore.history_learn(ordered, ring, 0, 0, float("nan"))
+    with pytest.raises(ValueError):
+        _hstcore.history_learn(ordered, ring, 5, 0, 1.0)
+    with pytest.raises(ValueError):
+        _hstcore.history_learn(np.zeros(3), ring, 0, 0, 1.0)
