@@ -755,6 +755,102 @@ done:
     return result;
 }
 
+/* One scorable feature of summarise's ranking. */
+typedef struct {
+    double p, strength;
+    PyObject *name; /* borrowed */
+    Py_ssize_t i;
+} Ranked;
+
+/* Whether a goes before b: rarer first (p), then the stronger evidence, then the name (code point order, as
+ * Python compares str). 1, 0, or -1 with an error set. */
+static int ranked_before(const Ranked *a, const Ranked *b) {
+    if (a->p != b->p) return a->p < b->p;
+    if (a->strength != b->strength) return a->strength > b->strength;
+    int c = PyUnicode_Compare(a->name, b->name);
+    if (c == -1 && PyErr_Occurred()) return -1;
+    return c < 0;
+}
+
+/* summarise(evidence, names, k) -> (p_min, scorable, order) or None: for ServiceModel.assess, the smallest p of
+ * the scorable evidence (1.0 if none) and how many are scorable, and the positions of at most k of them with a
+ * strength max(|z|, stuck) above 0, rarest first, then the strongest, then by name (the order of
+ * ServiceModel._contributors). None (the caller's Python loops decide) when a p or a strength is NaN, where the
+ * order of a Python sort is not a plain comparison's. */
+static PyObject *summarise(PyObject *module, PyObject *const *args, Py_ssize_t nargs) {
+    if (nargs != 3) {
+        PyErr_SetString(PyExc_TypeError, "summarise(evidence, names, k)");
+        return NULL;
+    }
+    PyObject *evs = args[0], *names = args[1];
+    Py_ssize_t k = PyLong_AsSsize_t(args[2]);
+    if (k == -1 && PyErr_Occurred()) return NULL;
+    if (!PyList_CheckExact(evs) || !PyList_CheckExact(names) || PyList_GET_SIZE(evs) != PyList_GET_SIZE(names) || k < 0) {
+        PyErr_SetString(PyExc_TypeError, "evidence and names: lists of one length; k >= 0");
+        return NULL;
+    }
+    Py_ssize_t n = PyList_GET_SIZE(evs);
+    Ranked stack[32];
+    Ranked *r = n <= 32 ? stack : PyMem_Malloc((size_t)n * sizeof(Ranked));
+    if (r == NULL) return PyErr_NoMemory();
+    PyObject *result = NULL;
+    double p_min = 1.0;
+    Py_ssize_t scorable = 0, m = 0;
+    for (Py_ssize_t i = 0; i < n; i++) {
+        PyObject *ev = PyList_GET_ITEM(evs, i);
+        int ok = ev_flag(ev, s_scorable);
+        if (ok < 0) goto done;
+        if (!ok) continue;
+        double p = ev_double(ev, s_p);
+        if (p == -1.0 && PyErr_Occurred()) goto done;
+        double z = ev_double(ev, s_z);
+        if (z == -1.0 && PyErr_Occurred()) goto done;
+        double stuck = ev_double(ev, s_stuck);
+        if (stuck == -1.0 && PyErr_Occurred()) goto done;
+        double strength = stuck > fabs(z) ? stuck : fabs(z); /* max(abs(z), stuck), as the builtin picks it */
+        if (isnan(p) || isnan(z) || isnan(stuck)) {
+            result = Py_NewRef(Py_None);
+            goto done;
+        }
+        if (scorable == 0 || p < p_min) p_min = p;
+        scorable++;
+        if (strength > 0.0) {
+            PyObject *name = PyList_GET_ITEM(names, i);
+            if (!PyUnicode_Check(name)) {
+                PyErr_SetString(PyExc_TypeError, "names must be str");
+                goto done;
+            }
+            /* Insertion into the sorted prefix: stable, and a window has a handful of features. */
+            Ranked item = {p, strength, name, i};
+            Py_ssize_t j = m;
+            while (j > 0) {
+                int before = ranked_before(&item, &r[j - 1]);
+                if (before < 0) goto done;
+                if (!before) break;
+                r[j] = r[j - 1];
+                j--;
+            }
+            r[j] = item;
+            m++;
+        }
+    }
+    Py_ssize_t take = m < k ? m : k;
+    PyObject *order = PyList_New(take);
+    if (order == NULL) goto done;
+    for (Py_ssize_t j = 0; j < take; j++) {
+        PyObject *pos = PyLong_FromSsize_t(r[j].i);
+        if (pos == NULL) {
+            Py_DECREF(order);
+            goto done;
+        }
+        PyList_SET_ITEM(order, j, pos);
+    }
+    result = Py_BuildValue("(dnN)", p_min, scorable, order);
+done:
+    if (r != stack) PyMem_Free(r);
+    return result;
+}
+
 static PyMethodDef baselinecore_functions[] = {
     {"configure", configure, METH_O, "configure(constants): the constants of models.seasonal, once at import."},
     {"compare", (PyCFunction)(void (*)(void))compare, METH_FASTCALL,
@@ -766,6 +862,9 @@ static PyMethodDef baselinecore_functions[] = {
     {"learn_evidence", (PyCFunction)(void (*)(void))learn_evidence, METH_FASTCALL,
      "learn_evidence(baseline, idx, evidence, k, kd, drift): SeasonalBaseline.learn_tail and, with drift, the "
      "running drift of SeasonalBaseline.update, in place."},
+    {"summarise", (PyCFunction)(void (*)(void))summarise, METH_FASTCALL,
+     "summarise(evidence, names, k) -> (p_min, scorable, order) or None: the smallest p and the count of the "
+     "scorable evidence, and the positions of the k strongest contributors in ServiceModel's order."},
     {NULL, NULL, 0, NULL},
 };
 

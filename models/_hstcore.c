@@ -1,5 +1,7 @@
 /* The inner loops of half-space trees (models/hst.py) as plain C loops: the padded split rule of a build
- * (HalfSpaceTrees._draw_padded) and the walk of one vector down every tree (HalfSpaceTrees._path).
+ * (HalfSpaceTrees._draw_padded), the walk of one vector down every tree (HalfSpaceTrees._path; squash_walk also
+ * builds the service model's squashed vector first, HalfSpaceTrees._squashed_path), and one window's masses and
+ * calibration history (score_path, learn_path, history_learn).
  *
  * The build.
  * The numpy form draws one level of every tree at a time, about fifteen array operations a level on arrays
@@ -142,64 +144,83 @@ fail_d:
     return NULL;
 }
 
-/* walk(v, feature, threshold, trees, height, n_nodes, path_out): the flat node index (tree * n_nodes +
- * node, heap order from 0) at every depth of every tree for the vector v, as HalfSpaceTrees._path gives
- * it. A node sends v right when v[feature] >= threshold (the float32 threshold widened to a double, an
- * exact conversion, as numpy compares them). */
-static PyObject *walk(PyObject *module, PyObject *args) {
-    PyObject *o_v, *o_feature, *o_threshold, *o_path;
-    Py_ssize_t trees, height, n_nodes;
-    if (!PyArg_ParseTuple(args, "OOOnnnO", &o_v, &o_feature, &o_threshold, &trees, &height, &n_nodes, &o_path))
-        return NULL;
+/* The split features (uint8, uint16 or uint32 of shape (trees, internal)) of walk and squash_walk, as a buffer;
+ * returns the item size, or -1 with an error set and nothing held. */
+static int get_feature(PyObject *o_feature, Py_buffer *vf, Py_ssize_t trees, Py_ssize_t internal) {
+    if (PyObject_GetBuffer(o_feature, vf, PyBUF_C_CONTIGUOUS | PyBUF_FORMAT) < 0) return -1;
+    const char *ff = vf->format ? vf->format : "B";
+    int fsize = (int)vf->itemsize;
+    if (vf->len != trees * internal * fsize || !((fsize == 1 && strcmp(ff, "B") == 0) || (fsize == 2 && strcmp(ff, "H") == 0) ||
+                                                  (fsize == 4 && strcmp(ff, "I") == 0))) {
+        PyErr_SetString(PyExc_ValueError, "feature must be contiguous uint8, uint16 or uint32 of shape (trees, internal)");
+        PyBuffer_Release(vf);
+        return -1;
+    }
+    return fsize;
+}
+
+/* Checks walk's and squash_walk's sizes (0, or -1 with an error set). */
+static int check_shape(Py_ssize_t trees, Py_ssize_t height, Py_ssize_t n_nodes) {
     if (trees < 1 || height < 1 || height > 24 || n_nodes != ((Py_ssize_t)2 << height) - 1) {
         PyErr_SetString(PyExc_ValueError, "trees >= 1, 1 <= height <= 24, n_nodes = 2 ** (height + 1) - 1");
-        return NULL;
+        return -1;
     }
+    return 0;
+}
+
+/* The walk of v (n_f values) down every tree into path: 0, or -1 with an error set. A node sends v right when
+ * v[feature] >= threshold (the float32 threshold widened to a double, an exact conversion, as numpy compares
+ * them). */
+static int walk_into(const double *v, Py_ssize_t n_f, const void *feature, int fsize, const float *threshold,
+                     Py_ssize_t trees, Py_ssize_t height, Py_ssize_t n_nodes, Py_ssize_t *path) {
     Py_ssize_t internal = ((Py_ssize_t)1 << height) - 1;
-    Py_buffer vv, vf, vt, vp;
-    if (PyObject_GetBuffer(o_v, &vv, PyBUF_C_CONTIGUOUS | PyBUF_FORMAT) < 0) return NULL;
-    Py_ssize_t n_f = vv.len / 8;
-    if (vv.itemsize != 8 || strcmp(vv.format ? vv.format : "B", "d") != 0) {
-        PyErr_SetString(PyExc_ValueError, "v must be contiguous float64");
-        PyBuffer_Release(&vv);
-        return NULL;
-    }
-    if (PyObject_GetBuffer(o_feature, &vf, PyBUF_C_CONTIGUOUS | PyBUF_FORMAT) < 0) goto fail_v;
-    const char *ff = vf.format ? vf.format : "B";
-    int fsize = (int)vf.itemsize;
-    if (vf.len != trees * internal * fsize || !((fsize == 1 && strcmp(ff, "B") == 0) || (fsize == 2 && strcmp(ff, "H") == 0) ||
-                                                 (fsize == 4 && strcmp(ff, "I") == 0))) {
-        PyErr_SetString(PyExc_ValueError, "feature must be contiguous uint8, uint16 or uint32 of shape (trees, internal)");
-        goto fail_f;
-    }
-    if (get_buffer(o_threshold, &vt, "float32", trees * internal, 0) < 0) goto fail_f;
-    if (get_buffer(o_path, &vp, "intp", trees * (height + 1), 1) < 0) goto fail_t;
-    const double *v = vv.buf;
-    const float *threshold = vt.buf;
-    Py_ssize_t *path = vp.buf;
     for (Py_ssize_t t = 0; t < trees; t++) {
         Py_ssize_t node = 0, base = t * internal;
         Py_ssize_t *out = path + t * (height + 1);
         out[0] = t * n_nodes;
         for (Py_ssize_t d = 1; d <= height; d++) {
-            Py_ssize_t f = fsize == 1 ? ((const uint8_t *)vf.buf)[base + node]
-                         : fsize == 2 ? ((const uint16_t *)vf.buf)[base + node]
-                                      : (Py_ssize_t)((const uint32_t *)vf.buf)[base + node];
+            Py_ssize_t f = fsize == 1 ? ((const uint8_t *)feature)[base + node]
+                         : fsize == 2 ? ((const uint16_t *)feature)[base + node]
+                                      : (Py_ssize_t)((const uint32_t *)feature)[base + node];
             if (f >= n_f) {
                 PyErr_SetString(PyExc_ValueError, "a split feature is beyond the vector");
-                goto fail_p;
+                return -1;
             }
             node = 2 * node + 1 + (v[f] >= (double)threshold[base + node]);
             out[d] = t * n_nodes + node;
         }
     }
+    return 0;
+}
+
+/* walk(v, feature, threshold, trees, height, n_nodes, path_out): the flat node index (tree * n_nodes +
+ * node, heap order from 0) at every depth of every tree for the vector v, as HalfSpaceTrees._path gives
+ * it. */
+static PyObject *walk(PyObject *module, PyObject *args) {
+    PyObject *o_v, *o_feature, *o_threshold, *o_path;
+    Py_ssize_t trees, height, n_nodes;
+    if (!PyArg_ParseTuple(args, "OOOnnnO", &o_v, &o_feature, &o_threshold, &trees, &height, &n_nodes, &o_path))
+        return NULL;
+    if (check_shape(trees, height, n_nodes) < 0) return NULL;
+    Py_ssize_t internal = ((Py_ssize_t)1 << height) - 1;
+    Py_buffer vv, vf, vt, vp;
+    if (PyObject_GetBuffer(o_v, &vv, PyBUF_C_CONTIGUOUS | PyBUF_FORMAT) < 0) return NULL;
+    if (vv.itemsize != 8 || strcmp(vv.format ? vv.format : "B", "d") != 0) {
+        PyErr_SetString(PyExc_ValueError, "v must be contiguous float64");
+        PyBuffer_Release(&vv);
+        return NULL;
+    }
+    int fsize = get_feature(o_feature, &vf, trees, internal);
+    if (fsize < 0) goto fail_v;
+    if (get_buffer(o_threshold, &vt, "float32", trees * internal, 0) < 0) goto fail_f;
+    if (get_buffer(o_path, &vp, "intp", trees * (height + 1), 1) < 0) goto fail_t;
+    int rc = walk_into(vv.buf, vv.len / 8, vf.buf, fsize, vt.buf, trees, height, n_nodes, vp.buf);
     PyBuffer_Release(&vp);
     PyBuffer_Release(&vt);
     PyBuffer_Release(&vf);
     PyBuffer_Release(&vv);
+    if (rc < 0) return NULL;
     Py_RETURN_NONE;
-fail_p:
-    PyBuffer_Release(&vp);
 fail_t:
     PyBuffer_Release(&vt);
 fail_f:
@@ -207,6 +228,96 @@ fail_f:
 fail_v:
     PyBuffer_Release(&vv);
     return NULL;
+}
+
+static PyObject *s_z, *s_change, *s_scorable;
+
+/* One float attribute of an evidence object (NaN with an error set when it is missing or not a number). */
+static double attr_double(PyObject *obj, PyObject *name) {
+    PyObject *v = PyObject_GetAttr(obj, name);
+    if (v == NULL) return NAN;
+    double d = PyFloat_CheckExact(v) ? PyFloat_AS_DOUBLE(v) : PyFloat_AsDouble(v);
+    Py_DECREF(v);
+    return d;
+}
+
+/* squash_walk(evidence, level_slots, change_slots, n_vec, scale, feature, threshold, trees, height, n_nodes,
+ * path_out): the walk of the vector HalfSpaceTrees._squashed_path builds. It holds 0.5 everywhere except, for
+ * every scorable evidence k with level_slots[k] >= 0, v[level_slots[k]] = 0.5 + 0.5 * tanh(z / scale) and
+ * v[change_slots[k]] = 0.5 + 0.5 * tanh(change / scale), in the order of the evidence (a later one wins). The same
+ * operations as the Python form; C's tanh is the one math.tanh calls. */
+static PyObject *squash_walk(PyObject *module, PyObject *const *args, Py_ssize_t nargs) {
+    if (nargs != 11) {
+        PyErr_SetString(PyExc_TypeError, "squash_walk(evidence, level_slots, change_slots, n_vec, scale, feature, "
+                                         "threshold, trees, height, n_nodes, path_out)");
+        return NULL;
+    }
+    PyObject *evs = args[0], *lvl = args[1], *chg = args[2];
+    if (!PyList_CheckExact(evs) || !PyList_CheckExact(lvl) || !PyList_CheckExact(chg) ||
+        PyList_GET_SIZE(lvl) != PyList_GET_SIZE(evs) || PyList_GET_SIZE(chg) != PyList_GET_SIZE(evs)) {
+        PyErr_SetString(PyExc_TypeError, "evidence, level_slots and change_slots: lists of one length");
+        return NULL;
+    }
+    Py_ssize_t n_vec = PyLong_AsSsize_t(args[3]);
+    double scale = PyFloat_AsDouble(args[4]);
+    Py_ssize_t trees = PyLong_AsSsize_t(args[7]), height = PyLong_AsSsize_t(args[8]), n_nodes = PyLong_AsSsize_t(args[9]);
+    if (PyErr_Occurred()) return NULL;
+    if (n_vec < 1 || n_vec > ((Py_ssize_t)1 << 24)) {
+        PyErr_SetString(PyExc_ValueError, "n_vec must be between 1 and 2 ** 24");
+        return NULL;
+    }
+    if (check_shape(trees, height, n_nodes) < 0) return NULL;
+    double stack[64];
+    double *v = n_vec <= 64 ? stack : PyMem_Malloc((size_t)n_vec * sizeof(double));
+    if (v == NULL) return PyErr_NoMemory();
+    for (Py_ssize_t i = 0; i < n_vec; i++) v[i] = 0.5;
+    PyObject *result = NULL;
+    Py_ssize_t n = PyList_GET_SIZE(evs);
+    for (Py_ssize_t k = 0; k < n; k++) {
+        Py_ssize_t a = PyLong_AsSsize_t(PyList_GET_ITEM(lvl, k));
+        if (a == -1 && PyErr_Occurred()) goto done;
+        if (a < 0) continue;
+        Py_ssize_t b = PyLong_AsSsize_t(PyList_GET_ITEM(chg, k));
+        if (b == -1 && PyErr_Occurred()) goto done;
+        if (a >= n_vec || b < 0 || b >= n_vec) {
+            PyErr_SetString(PyExc_IndexError, "a slot is outside the vector");
+            goto done;
+        }
+        PyObject *ev = PyList_GET_ITEM(evs, k);
+        PyObject *flag = PyObject_GetAttr(ev, s_scorable);
+        if (flag == NULL) goto done;
+        int scorable = PyObject_IsTrue(flag);
+        Py_DECREF(flag);
+        if (scorable < 0) goto done;
+        if (!scorable) continue;
+        double z = attr_double(ev, s_z);
+        if (PyErr_Occurred()) goto done;
+        double c = attr_double(ev, s_change);
+        if (PyErr_Occurred()) goto done;
+        v[a] = 0.5 + 0.5 * tanh(z / scale);
+        v[b] = 0.5 + 0.5 * tanh(c / scale);
+    }
+    Py_ssize_t internal = ((Py_ssize_t)1 << height) - 1;
+    Py_buffer vf, vt, vp;
+    int fsize = get_feature(args[5], &vf, trees, internal);
+    if (fsize < 0) goto done;
+    if (get_buffer(args[6], &vt, "float32", trees * internal, 0) < 0) {
+        PyBuffer_Release(&vf);
+        goto done;
+    }
+    if (get_buffer(args[10], &vp, "intp", trees * (height + 1), 1) < 0) {
+        PyBuffer_Release(&vt);
+        PyBuffer_Release(&vf);
+        goto done;
+    }
+    int rc = walk_into(v, n_vec, vf.buf, fsize, vt.buf, trees, height, n_nodes, vp.buf);
+    PyBuffer_Release(&vp);
+    PyBuffer_Release(&vt);
+    PyBuffer_Release(&vf);
+    if (rc == 0) result = Py_NewRef(Py_None);
+done:
+    if (v != stack) PyMem_Free(v);
+    return result;
 }
 
 /* The masses (uint8, uint16 and, if widest is 4, uint32; shape (trees, nodes)) and one window's path (intp, shape
@@ -372,6 +483,9 @@ static PyMethodDef hstcore_functions[] = {
     {"walk", walk, METH_VARARGS,
      "walk(v, feature, threshold, trees, height, n_nodes, path_out): the flat node index at every depth of "
      "every tree for the vector v, into path_out of shape (trees, height + 1)."},
+    {"squash_walk", (PyCFunction)(void (*)(void))squash_walk, METH_FASTCALL,
+     "squash_walk(evidence, level_slots, change_slots, n_vec, scale, feature, threshold, trees, height, n_nodes, "
+     "path_out): the walk of the squashed vector of HalfSpaceTrees._squashed_path, into path_out."},
     {"history_learn", history_learn, METH_VARARGS,
      "history_learn(sorted, ring, size, head, raw) -> (size, head): EmpiricalCalibrator.learn in place."},
     {"learn_path", learn_path, METH_VARARGS,
@@ -398,4 +512,10 @@ static struct PyModuleDef hstcore_module = {
     hstcore_functions,
 };
 
-PyMODINIT_FUNC PyInit__hstcore(void) { return PyModule_Create(&hstcore_module); }
+PyMODINIT_FUNC PyInit__hstcore(void) {
+    s_z = PyUnicode_InternFromString("z");
+    s_change = PyUnicode_InternFromString("change");
+    s_scorable = PyUnicode_InternFromString("scorable");
+    if (s_z == NULL || s_change == NULL || s_scorable == NULL) return NULL;
+    return PyModule_Create(&hstcore_module);
+}

@@ -51,16 +51,22 @@ def split_features(x: Mapping[str, float]) -> tuple[list[str], list[float]]:
     empty window or a broken exporter must not poison a baseline for good. A key that is not a
     string or a value that is not a real number raises :class:`~models.errors.FeatureError`.
     """
-    if not isinstance(x, Mapping):
+    if type(x) is not dict and not isinstance(x, Mapping):  # a dict is the usual case: no ABC check
         raise FeatureError(f"features must be a mapping of name to number, got {type(x).__name__}")
     names: list[str] = []
     values: list[float] = []
     isfinite = math.isfinite
     for name, value in x.items():
+        if type(value) is float and type(name) is str:
+            # The usual case (window features are floats named by str): ``float(value)`` is ``value``.
+            if isfinite(value):
+                names.append(name)
+                values.append(value)
+            continue
         if not isinstance(name, str):
             raise FeatureError(f"feature names must be strings, got {name!r}")
         if type(value) is float:
-            v = value  # the usual case (window features are floats): ``float(value)`` is ``value``
+            v = value
         else:
             # bool is an int subclass, but a flag is not a measurement.
             if isinstance(value, bool) or isinstance(value, (str, bytes)):

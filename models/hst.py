@@ -66,11 +66,12 @@ try:
     from models._hstcore import draw_padded as _c_draw_padded
     from models._hstcore import learn_path as _c_learn_path
     from models._hstcore import score_path as _c_score_path
+    from models._hstcore import squash_walk as _c_squash_walk
     from models._hstcore import walk as _c_walk
 except ImportError:  # pragma: no cover - depends on the install
-    _c_draw_padded = _c_learn_path = _c_score_path = _c_walk = None
+    _c_draw_padded = _c_learn_path = _c_score_path = _c_squash_walk = _c_walk = None
 if PURE_PYTHON:
-    _c_draw_padded = _c_learn_path = _c_score_path = _c_walk = None
+    _c_draw_padded = _c_learn_path = _c_score_path = _c_squash_walk = _c_walk = None
 
 __all__ = ["HalfSpaceTrees", "SPLIT_RULES"]
 
@@ -427,6 +428,30 @@ class HalfSpaceTrees:
                 j = 2 * j + go_right[base + j]
             append(j)
         return (np.array(leaves, dtype=np.intp)[:, None] >> walk[4]) + walk[5]
+
+    def _squashed_path(self, evidence: list, level_slots: list[int], change_slots: list[int],
+                       scale: float) -> np.ndarray:
+        """:meth:`_path` of the vector that is 0.5 everywhere but at the slots of scorable evidence.
+
+        For each ``evidence[k]`` (anything with ``z``, ``change`` and ``scorable``) that is scorable and has
+        ``level_slots[k] >= 0``: ``v[level_slots[k]] = 0.5 + 0.5 * tanh(z / scale)`` and
+        ``v[change_slots[k]]`` the same of ``change``, in order. The service model's tree vector, built and
+        walked in one C call where the accelerator is installed (the same floats: C's ``tanh`` is the one
+        ``math.tanh`` calls).
+        """
+        if (_c_squash_walk is not None and type(evidence) is list and type(level_slots) is list
+                and type(change_slots) is list):
+            path = np.empty((self.n_trees, self.height + 1), dtype=np.intp)
+            _c_squash_walk(evidence, level_slots, change_slots, len(self.features), scale, self._feature,
+                           self._threshold, self.n_trees, self.height, self.n_nodes, path)
+            return path
+        v = [0.5] * len(self.features)  # missing -> the prediction itself -> 0.5
+        tanh = math.tanh
+        for e, a, b in zip(evidence, level_slots, change_slots, strict=True):
+            if a >= 0 and e.scorable:
+                v[a] = 0.5 + 0.5 * tanh(e.z / scale)
+                v[b] = 0.5 + 0.5 * tanh(e.change / scale)
+        return self._path(np.array(v, dtype=np.float64))
 
     def _score_path(self, path: np.ndarray) -> float:
         """Normalised score of paths of shape ``(..., n_trees, height + 1)``, summed per row."""

@@ -93,12 +93,21 @@ from typing import Any
 
 import numpy as np
 
-from models.base import split_features
+from models.base import PURE_PYTHON, split_features
 from models.calibration import TailCalibrator, pair_tail, surprise_score
 from models.errors import CorruptState, SettingsError, StateError
 from models.hst import HalfSpaceTrees
 from models.seasonal import Evidence, SeasonalBaseline, tail_deviate
 from models.settings import MODEL_KINDS, ModelSettings
+
+try:
+    # The smallest p, the scorable count and the contributors' order of a window in one C pass
+    # (models/_baselinecore.c), the same as ServiceModel._summarise; off with TIDEWATCH_PURE_PYTHON=1.
+    from models._baselinecore import summarise as _c_summarise
+except ImportError:  # pragma: no cover - depends on the install
+    _c_summarise = None
+if PURE_PYTHON:
+    _c_summarise = None
 
 __all__ = [
     "Assessment",
@@ -180,7 +189,7 @@ class ServiceModel:
 
     __slots__ = ("service", "settings", "kind", "windows_seen", "_baseline", "_trees",
                  "_cal_trees", "_alert_on", "_alert_len", "_calm",
-                 "_shift", "_shift_n", "_last_at", "_tree_slots", "_tree_slots_for",
+                 "_shift", "_shift_n", "_last_at", "_tree_layout", "_known",
                  "_p_before", "_p_earlier", "_lesson")
 
     def __init__(self, service: str, settings: ModelSettings) -> None:
@@ -212,10 +221,11 @@ class ServiceModel:
         self._p_earlier = 1.0
         # The first window of the open alert: positions and their (z, drift), for the tails.
         self._lesson: list[tuple[int, float, float]] = []
-        # Tree-vector positions (level, change) of each feature name, for the trees in
-        # ``_tree_slots_for`` (a cache: rebuilt if the trees are replaced; not part of the state).
-        self._tree_slots: dict[str, tuple[int, int] | None] = {}
-        self._tree_slots_for: HalfSpaceTrees | None = None
+        # (trees, names, level slots, change slots): the tree-vector positions of the features of the last
+        # window, for those trees (a cache, rebuilt when the names or the trees change; not part of the state).
+        self._tree_layout: tuple | None = None
+        # (baseline, names, positions) of the last window's features (a cache of locate, likewise).
+        self._known: tuple | None = None
 
     def __repr__(self) -> str:
         return (f"ServiceModel(service={self.service!r}, kind={self.kind!r}, "
@@ -249,9 +259,20 @@ class ServiceModel:
             if not math.isnan(self._last_at):
                 baseline.observe_step(at - self._last_at)
             self._last_at = at
-        idx = baseline.locate(names, add=True)
+        known = self._known
+        if known is not None and known[0] is baseline and known[1] == names:
+            idx = known[2]  # the same features as the last window: the same positions
+        else:
+            idx = baseline.locate(names, add=True)
+            self._known = (baseline, names, idx)
         evidence = baseline.compare(idx, values, at, held_through)
-        contributors = self._contributors(names, values, evidence)
+        summary = None
+        if _c_summarise is not None and type(names) is list:
+            summary = _c_summarise(evidence, names, MAX_CONTRIBUTORS)  # None where a p or a z is NaN
+        # The smallest tail probability among the scorable features (the first smallest, as ``min``
+        # picks it; 1.0 if none), their count, and the contributors' positions, in one pass.
+        p_min, scorable, order = self._summarise(names, evidence) if summary is None else summary
+        contributors = [Contribution(names[i], values[i], evidence[i].expected, evidence[i].z) for i in order]
 
         p = 1.0
         raw = 0.0
@@ -259,17 +280,6 @@ class ServiceModel:
         ready_t = False
         tree_raw = None  # the trees' score of this window, once computed (learning reuses it)
         kind = self.kind
-        if kind != "half_space_trees":
-            # The smallest tail probability among the scorable features (the first smallest,
-            # as ``min`` picks it; 1.0 if none) and their count, in one pass.
-            p_min = 1.0
-            scorable = 0
-            for e in evidence:
-                if e.scorable:
-                    pe = e.p
-                    if scorable == 0 or pe < p_min:
-                        p_min = pe
-                    scorable += 1
         if kind == "combined":
             p = min(1.0, scorable * p_min)
             raw = tail_deviate(0.5 * p_min)
@@ -380,42 +390,44 @@ class ServiceModel:
             if not names:
                 return None  # nothing to build the trees on yet
             trees.build([f"{n}|{part}" for n in names for part in _TREE_PARTS])
-        slots = self._tree_slots
-        if self._tree_slots_for is not trees:
-            slots.clear()
-            self._tree_slots_for = trees
-        v = [0.5] * len(trees.features)  # missing -> the prediction itself -> 0.5
-        tanh = math.tanh
-        for name, e in zip(names, evidence):
-            if name in slots:
-                slot = slots[name]
-            else:
-                index = trees.feature_index
+        layout = self._tree_layout
+        if layout is None or layout[0] is not trees or layout[1] != names:
+            # A service's windows nearly always carry the same features: their slots are looked up once.
+            index = trees.feature_index
+            level, change = [], []
+            for name in names:
                 i = index.get(f"{name}|level")
-                slot = slots[name] = None if i is None else (i, index[f"{name}|change"])
-            if slot is not None and e.scorable:
-                # _squash, written out (the same operations).
-                v[slot[0]] = 0.5 + 0.5 * tanh(e.z / SQUASH_Z)
-                v[slot[1]] = 0.5 + 0.5 * tanh(e.change / SQUASH_Z)
-        return trees._path(np.array(v, dtype=np.float64))
+                level.append(-1 if i is None else i)
+                change.append(-1 if i is None else index[f"{name}|change"])
+            layout = self._tree_layout = (trees, names, level, change)
+        # Each feature's level and change, squashed as _squash does (missing -> 0.5, the prediction itself).
+        return trees._squashed_path(evidence, layout[2], layout[3], SQUASH_Z)
 
     @staticmethod
-    def _contributors(names: list[str], values: list[float],
-                      evidence: list[Evidence]) -> list[Contribution]:
-        # Rarest first (each feature's own tail probability), then the strongest evidence; the
-        # name breaks ties so the list never depends on input order. ``Evidence.strength`` is
-        # computed once per feature here (the same ``max(|z|, stuck)``).
+    def _summarise(names: list[str], evidence: list[Evidence]) -> tuple[float, int, list[int]]:
+        """``(p_min, scorable, order)`` of :meth:`assess`: the Python form of the C ``summarise``.
+
+        The smallest ``p`` of the scorable evidence (1.0 if none), how many are scorable, and the
+        positions of the contributors: rarest first (each feature's own tail probability), then the
+        strongest evidence; the name breaks ties so the list never depends on input order.
+        ``Evidence.strength`` is computed once per feature here (the same ``max(|z|, stuck)``).
+        """
+        p_min = 1.0
+        scorable = 0
         order = []
         keys = {}
         for i, e in enumerate(evidence):
             if e.scorable:
+                pe = e.p
+                if scorable == 0 or pe < p_min:
+                    p_min = pe
+                scorable += 1
                 strength = max(abs(e.z), e.stuck)
                 if strength > 0.0:
                     order.append(i)
-                    keys[i] = (e.p, -strength, names[i])
+                    keys[i] = (pe, -strength, names[i])
         order.sort(key=keys.__getitem__)
-        return [Contribution(names[i], values[i], evidence[i].expected, evidence[i].z)
-                for i in order[:MAX_CONTRIBUTORS]]
+        return p_min, scorable, order[:MAX_CONTRIBUTORS]
 
     # ------------------------------------------------------------------ state
     def to_state(self) -> dict[str, Any]:

@@ -58,7 +58,8 @@ def windows(service: int, n: int, offset: int = 0) -> list[tuple[dict[str, float
             "queue_depth.max": float(max(0, round(5.0 + 2.0 * nz[5]))),
             "restarts.sum": 1.0 if j % 613 == 300 else 0.0,
         }
-        out.append((feats, at))
+        # Plain floats, as service.windows.window_features gives them (numpy scalars take split_features' slow path).
+        out.append(({name: float(v) for name, v in feats.items()}, at))
     return out
 
 

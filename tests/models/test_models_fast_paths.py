@@ -313,3 +313,136 @@ def test_the_new_c_loops_refuse_arrays_of_the_wrong_shape_or_type() -> None:
         _hstcore.history_learn(ordered, ring, 5, 0, 1.0)
     with pytest.raises(ValueError):
         _hstcore.history_learn(np.zeros(3), ring, 0, 0, 1.0)
+
+
+def _model_stream(seed: int, n: int) -> list[tuple[dict[str, float], float, dict[str, bool]]]:
+    """A service whose features come and go (a metric missing for a while, one added late), for a whole model."""
+    out = []
+    for k, feats in enumerate(stream(seed, n)):
+        feats = dict(feats)
+        if 300 <= k < 340:
+            del feats["rounded.max"]  # an exporter that stopped sending one metric
+        if 400 <= k < 420:
+            feats["spare.max"] = feats.pop("rounded.max")  # another metric in its place: as many names, not the same
+        if k >= 500:
+            feats["late.mean"] = 1.0 + 0.01 * (k % 7)  # a metric first sent on day two
+        if k % 97 == 13:
+            feats["lat.mean"] = float("nan")  # an aggregate over nothing: missing
+        steady = {name: feats[name] == 7.0 for name in feats if name == "frozen.mean"}
+        out.append((feats, T0 + STEP * k, steady))
+    return out
+
+
+def _run_model(items, clear_caches: bool = False):
+    from models import ModelSettings, build_model
+
+    model = build_model("ferry-gate", ModelSettings(warm_up=20))
+    seen = []
+    for feats, at, steady in items:
+        if clear_caches:
+            model._known = model._tree_layout = None
+        a = model.assess(feats, at=at, steady=steady)
+        seen.append((a.score, a.raw, a.anomalous, a.warming_up,
+                     [(c.feature, c.observed, c.expected, c.deviation) for c in a.contributors]))
+    return seen, model
+
+
+def _model_record(model) -> bytes:
+    from models.persistence import encode_state
+
+    return encode_state(model.service, model)
+
+
+@pytest.mark.parametrize("seed", [0, 1])
+def test_the_whole_model_scores_the_same_with_and_without_the_c_loops(seed: int, monkeypatch) -> None:
+    # Every C accelerator of the models (compare, update, the tails, the trees' build, walk, masses and
+    # history, the window summary) against the Python reference, over a service whose features change.
+    from models import calibration, hst, seasonal, service_model
+
+    if service_model._c_summarise is None or hst._c_squash_walk is None:
+        pytest.skip("built without the C extension")
+    items = _model_stream(seed, 900)
+    fast, fast_model = _run_model(items)
+    for module, names in ((seasonal, ("_c_compare", "_c_update_loop", "_c_learn_evidence")),
+                          (hst, ("_c_draw_padded", "_c_learn_path", "_c_score_path", "_c_squash_walk", "_c_walk")),
+                          (calibration, ("_c_history_learn",)), (service_model, ("_c_summarise",))):
+        for name in names:
+            monkeypatch.setattr(module, name, None)
+    slow, slow_model = _run_model(items)
+    assert fast == slow
+    assert any(a[2] for a in fast) and any(a[4] for a in fast)  # alerts and contributors were compared
+    assert _model_record(fast_model) == _model_record(slow_model)
+
+
+def test_the_per_window_caches_change_nothing() -> None:
+    # The positions of the last window's features (baseline and trees) are reused while the names stay the same.
+    items = _model_stream(2, 700)
+    cached, cached_model = _run_model(items)
+    fresh, fresh_model = _run_model(items, clear_caches=True)
+    assert cached == fresh
+    assert _model_record(cached_model) == _model_record(fresh_model)
+
+
+def _evidence(rng: np.random.Generator, n: int) -> list:
+    from models.seasonal import Evidence
+
+    out = []
+    for _ in range(n):
+        tie = rng.random() < 0.3  # equal p and strength: the name decides
+        z = 2.0 if tie else float(rng.normal(0.0, 3.0))
+        out.append(Evidence(float(rng.normal()), z, float(rng.normal(0.0, 2.0)),
+                            float(rng.choice([0.0, 0.0, abs(z), 4.0])), bool(rng.random() < 0.8),
+                            0.01 if tie else float(rng.choice([1.0, rng.random(), 1e-6 * rng.random()])),
+                            0.0, False))
+    return out
+
+
+def test_the_c_summary_ranks_the_contributors_as_the_python_summary_does() -> None:
+    from models import service_model
+    from models.service_model import MAX_CONTRIBUTORS, ServiceModel
+
+    if service_model._c_summarise is None:
+        pytest.skip("built without the C extension")
+    rng = np.random.default_rng(5)
+    for trial in range(400):
+        n = int(rng.integers(0, 40))
+        names = [f"m{int(k):03d}.mean" for k in rng.permutation(n)]
+        evidence = _evidence(rng, n)
+        got = service_model._c_summarise(evidence, names, MAX_CONTRIBUTORS)
+        assert got == ServiceModel._summarise(names, evidence), trial
+    evidence = _evidence(rng, 3)
+    evidence[1].scorable, evidence[1].p = True, float("nan")
+    assert service_model._c_summarise(evidence, ["a", "b", "c"], 5) is None  # NaN: the Python sort decides
+    with pytest.raises(TypeError):
+        service_model._c_summarise(evidence, ["a", "b"], 5)
+
+
+def test_the_c_squashed_walk_walks_the_python_vector(monkeypatch) -> None:
+    from models import hst
+
+    if hst._c_squash_walk is None:
+        pytest.skip("built without the C extension")
+    c_walk = hst._c_squash_walk
+    rng = np.random.default_rng(6)
+    for n_features in (1, 3, 40):  # 40 features: an 80-slot vector, beyond the C stack buffer
+        trees = HalfSpaceTrees(8, 6, 50, seed=n_features)
+        trees.build([f"f{i}|{part}" for i in range(n_features) for part in ("level", "change")])
+        for _ in range(50):
+            evidence = _evidence(rng, n_features)
+            level = [int(v) for v in rng.permutation(n_features) * 2]
+            change = [a + 1 for a in level]
+            for k in rng.choice(n_features, size=n_features // 3, replace=False):
+                level[k] = change[k] = -1  # a feature the trees were not built on
+            monkeypatch.setattr(hst, "_c_squash_walk", c_walk)
+            fast = trees._squashed_path(evidence, level, change, 3.0)
+            monkeypatch.setattr(hst, "_c_squash_walk", None)
+            slow = trees._squashed_path(evidence, level, change, 3.0)
+            assert fast.dtype == slow.dtype and np.array_equal(fast, slow)
+    path = np.empty((trees.n_trees, trees.height + 1), dtype=np.intp)
+    args = (trees._feature, trees._threshold, trees.n_trees, trees.height, trees.n_nodes, path)
+    with pytest.raises(IndexError):
+        c_walk(evidence[:1], [80], [81], 80, 3.0, *args)  # a slot beyond the vector
+    with pytest.raises(TypeError):
+        c_walk(evidence[:2], [0], [1], 80, 3.0, *args)  # lists of different lengths
+    with pytest.raises(ValueError):
+        c_walk(evidence[:1], [0], [1], 2, 3.0, *args)  # the trees split features beyond a 2-slot vector
