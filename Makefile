@@ -34,18 +34,18 @@ test-fast: $(STAMP_TEST)
 ## test-c-sanitized: the C accelerators built with AddressSanitizer and UBSan in a scratch copy, and their tests run there
 SANITIZED ?= /tmp/tidewatch-sanitized
 test-c-sanitized: $(STAMP_TEST)
-	rm -rf $(SANITIZED) && mkdir -p $(SANITIZED) && cp -r service models tests pyproject.toml $(SANITIZED)/
+	rm -rf $(SANITIZED) && mkdir -p $(SANITIZED) && cp -r service models config tests pyproject.toml $(SANITIZED)/
 	rm -f $(SANITIZED)/service/*.so $(SANITIZED)/models/*.so
-	cd $(SANITIZED) && for ext in service/_hotpath models/_hstcore models/_baselinecore; do \
+	cd $(SANITIZED) && for ext in service/_hotpath service/_scoremsg models/_hstcore models/_baselinecore; do \
 	  gcc -shared -fPIC -O1 -g -fsanitize=address,undefined -fno-omit-frame-pointer -ffp-contract=off \
 	    -I"$$($(CURDIR)/$(BIN)/python -c 'import sysconfig; print(sysconfig.get_paths()["include"])')" \
 	    $$ext.c -o $$ext"$$($(CURDIR)/$(BIN)/python -c 'import sysconfig; print(sysconfig.get_config_var("EXT_SUFFIX"))')" || exit 1; done
 	cd $(SANITIZED) && export ASAN_OPTIONS=detect_leaks=0:abort_on_error=1 UBSAN_OPTIONS=halt_on_error=1:print_stacktrace=1 \
 	  LD_PRELOAD="$$(gcc -print-file-name=libasan.so) $$(gcc -print-file-name=libubsan.so)" PYTHONPATH=$(SANITIZED) && \
-	  $(CURDIR)/$(BIN)/python -c "import service._hotpath as h, models._hstcore as m, models._baselinecore as b, sys; \
-	    sys.exit(0 if all(x.__file__.startswith('$(SANITIZED)') for x in (h, m, b)) else 'not the sanitized build')" && \
+	  $(CURDIR)/$(BIN)/python -c "import service._hotpath as h, service._scoremsg as e, models._hstcore as m, models._baselinecore as b, sys; \
+	    sys.exit(0 if all(x.__file__.startswith('$(SANITIZED)') for x in (h, e, m, b)) else 'not the sanitized build')" && \
 	  $(CURDIR)/$(BIN)/python -m pytest -q -p no:cacheprovider tests/test_hotpath.py tests/models/test_models_hst.py \
-	    tests/models/test_models_fast_paths.py
+	    tests/models/test_models_fast_paths.py tests/test_score_message.py
 
 ## bench-nab: NAB scores on a directory laid out like nab-dev (NAB=path)
 bench-nab: $(STAMP_TEST)

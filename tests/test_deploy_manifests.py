@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import copy
 import json
+import re
 import shlex
 import tomllib
 from pathlib import Path
@@ -241,11 +242,14 @@ def test_dockerfile_compiles_the_c_extensions_and_fails_if_they_do_not():
     # image got it; the compiler goes in the same layer it is removed from.
     [step] = [r for r in _dockerfile_instructions("RUN") if "pip install ." in r]
     assert step.index("apt-get install") < step.index("gcc") < step.index("pip install .")
-    check = 'python -c "import service._hotpath, models._hstcore, models._baselinecore"'
-    assert step.index("pip install .") < step.index(check) < step.index("apt-get purge")
     ext = tomllib.loads((REPO / "pyproject.toml").read_text())["tool"]["setuptools"]["ext-modules"]
-    assert sorted(m["name"] for m in ext) == ["models._baselinecore", "models._hstcore", "service._hotpath"]
+    names = sorted(m["name"] for m in ext)
+    assert names == ["models._baselinecore", "models._hstcore", "service._hotpath", "service._scoremsg"]
     assert all((REPO / src).exists() for m in ext for src in m["sources"])
+    # every extension pyproject.toml declares is imported after the install, before the compiler goes
+    check = step[step.index("pip install ."):step.index("apt-get purge")]
+    [imported] = re.findall(r'python -c "import ([^"]+)"', check)
+    assert sorted(n.strip() for n in imported.split(",")) == names
 
 
 def test_dockerfile_runs_as_a_non_root_user():
