@@ -51,8 +51,26 @@ static int put_string(Out *o, PyObject *s) {
     return 1;
 }
 
+/* |x| * 10^6, rounded to the nearest integer as the exact product would be, in *k; 0 where that cannot be told
+ * from the double product (|x| * 10^6 from 2^52 up, or within a few units in its last place of a half, where the
+ * product's own rounding could have moved it across), and then the caller takes the dtoa route. Away from those
+ * halves the exact product and the double one (within half a unit in the last place) round to the same integer,
+ * and that integer divided by 10^6 (both exact, one correctly rounded division) is the double nearest to the
+ * six-decimal result, which is what round(x, 6) returns. */
+static int scaled6(double x, double *k) {
+    double y = fabs(x) * 1e6;
+    if (!(y < 4503599627370496.0)) return 0; /* 2^52 */
+    double f = floor(y), frac = y - f; /* exact: both are multiples of y's last place */
+    double ulp = nextafter(y, INFINITY) - y;
+    if (fabs(frac - 0.5) <= 4.0 * ulp) return 0;
+    *k = frac > 0.5 ? f + 1.0 : f;
+    return 1;
+}
+
 /* Python's round(x, 6) of a finite double (-1.0 with an error set on failure: check PyErr_Occurred). */
 static double round6(double x) {
+    double k;
+    if (scaled6(x, &k)) return copysign(k / 1e6, x);
     char *text = PyOS_double_to_string(x, 'f', 6, 0, NULL);
     if (text == NULL) return -1.0;
     double r = PyOS_string_to_double(text, NULL, NULL);
@@ -93,14 +111,44 @@ static int put_double(Out *o, double x) {
     return rc;
 }
 
+/* round(x, 6) of a finite double, written. Where round(x, 6) is k / 10^6 with k = 0 or 100 <= k < 10^15, its
+ * repr is k's decimal digits with the point six from the right and trailing zeros dropped (at most 15 significant
+ * digits: the double nearest that decimal reads back as no other decimal of 15 digits or fewer, so no shorter
+ * string is its repr), in plain layout (1e-4 <= |value| < 1e9) in Python and orjson alike: written here without
+ * dtoa. Otherwise through round6 and put_double. 1 written, -1 error. */
+static int put_rounded_double(Out *o, double x) {
+    double k;
+    if (scaled6(x, &k) && k < 1e15 && (k == 0.0 || k >= 100.0)) {
+        char digits[40], *p = digits + sizeof digits;
+        unsigned long long n = (unsigned long long)k, whole = n / 1000000ULL, part = n % 1000000ULL;
+        int places = 6;
+        while (places > 1 && part % 10ULL == 0) { /* trailing zeros dropped, one digit kept */
+            part /= 10ULL;
+            places--;
+        }
+        for (int i = 0; i < places; i++) {
+            *--p = (char)('0' + part % 10ULL);
+            part /= 10ULL;
+        }
+        *--p = '.';
+        do {
+            *--p = (char)('0' + whole % 10ULL);
+            whole /= 10ULL;
+        } while (whole);
+        if (signbit(x)) *--p = '-'; /* round(-1e-9, 6) is -0.0, written "-0.0" by both */
+        return put(o, p, (Py_ssize_t)(digits + sizeof digits - p)) < 0 ? -1 : 1;
+    }
+    double r = round6(x);
+    if (r == -1.0 && PyErr_Occurred()) return -1;
+    return put_double(o, r);
+}
+
 /* round(x, 6) of a float object, written. 1, 0 (fall back: not a float, or not finite), -1 error. */
 static int put_rounded(Out *o, PyObject *v) {
     if (!PyFloat_Check(v)) return 0;
     double x = PyFloat_AS_DOUBLE(v);
     if (!isfinite(x)) return 0;
-    double r = round6(x);
-    if (r == -1.0 && PyErr_Occurred()) return -1;
-    return put_double(o, r);
+    return put_rounded_double(o, x);
 }
 
 static PyObject *s_feature, *s_observed, *s_expected, *s_deviation, *s_score, *s_raw, *s_anomalous, *s_warming_up,
@@ -252,6 +300,20 @@ static PyObject *number(PyObject *module, PyObject *arg) {
     return result;
 }
 
+/* rounded_number(x) -> bytes or None: round(x, 6) written as the message writes a score or a contributor's
+ * number (for the probe and the tests). */
+static PyObject *rounded_number(PyObject *module, PyObject *arg) {
+    double x = PyFloat_AsDouble(arg);
+    if (x == -1.0 && PyErr_Occurred()) return NULL;
+    if (!isfinite(x)) Py_RETURN_NONE;
+    char stack[64];
+    Out o = {stack, stack, 0, sizeof stack};
+    int rc = put_rounded_double(&o, x);
+    PyObject *result = rc > 0 ? PyBytes_FromStringAndSize(o.buf, o.len) : rc == 0 ? Py_NewRef(Py_None) : NULL;
+    if (o.buf != stack) PyMem_Free(o.buf);
+    return result;
+}
+
 /* rounded(x) -> float: Python's round(x, 6), as the message computes it. */
 static PyObject *rounded(PyObject *module, PyObject *arg) {
     double x = PyFloat_AsDouble(arg);
@@ -268,6 +330,8 @@ static PyMethodDef scoremsg_functions[] = {
      "None: the score message, or None where the Python form must write it."},
     {"number", number, METH_O, "number(x) -> bytes or None: a finite float in the message's (orjson's) layout."},
     {"rounded", rounded, METH_O, "rounded(x) -> float: round(x, 6) as the message computes it."},
+    {"rounded_number", rounded_number, METH_O,
+     "rounded_number(x) -> bytes or None: round(x, 6) of a finite float in the message's (orjson's) layout."},
     {NULL, NULL, 0, NULL},
 };
 
@@ -279,7 +343,9 @@ static struct PyModuleDef scoremsg_module = {
     ">>> number(2.5e-05), number(1e-06), number(1e16), number(float('inf'))\n"
     "(b'0.000025', b'1e-6', b'1e+16', None)\n"
     ">>> rounded(0.1234565), rounded(2.0000004)\n"
-    "(0.123456, 2.0)\n",
+    "(0.123456, 2.0)\n"
+    ">>> rounded_number(-1234.5678901), rounded_number(-1e-9), rounded_number(3e-06)\n"
+    "(b'-1234.56789', b'-0.0', b'3e-6')\n",
     -1,
     scoremsg_functions,
 };

@@ -27,7 +27,8 @@ _PROBES = tuple(
 
 def _agrees(encoder) -> bool:
     for x in _PROBES:
-        if encoder.number(x) != _dumps(x) or encoder.rounded(x) != round(x, 6):
+        if encoder.number(x) != _dumps(x) or encoder.rounded(x) != round(x, 6) \
+                or encoder.rounded_number(x) != _dumps(round(x, 6)):
             return False
     return True
 

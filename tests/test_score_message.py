@@ -62,7 +62,20 @@ _numbers = st.one_of(
     st.floats(min_value=-1e-3, max_value=1e-3),  # where round(x, 6) and the exponent layouts meet
     st.floats(min_value=0.0, max_value=1.0),
     st.sampled_from([0.0, -0.0, 1e-6, 5e-7, 2.5e-5, 1e16, -1e15, 0.1234565, 1.0000005, 123456.7890125]),
+    # round(x, 6) halfway cases and their neighbours, where the C short cut must hand over to dtoa: (k + 1/2) / 10^6
+    # and the doubles a few steps either side of it, for k up to where the short cut stops (10^15)
+    st.builds(lambda k, steps, sign: sign * _step((k + 0.5) / 1e6, steps),
+              st.one_of(st.integers(0, 10**6), st.integers(0, 10**15)), st.integers(-6, 6), st.sampled_from([1.0, -1.0])),
+    st.floats(min_value=9.99e8, max_value=1.001e9),  # |x| * 10^6 near 10^15, where the short cut stops
 )
+
+
+def _step(x: float, steps: int) -> float:
+    import math
+
+    for _ in range(abs(steps)):
+        x = math.nextafter(x, math.inf if steps > 0 else -math.inf)
+    return x
 _names = st.one_of(st.text(max_size=12), st.sampled_from(["ticket-api", "latency_p95_ms.mean", ".mean", "count", "a.b.c"]))
 
 
@@ -101,8 +114,9 @@ def test_the_c_rounding_and_number_layout_are_python_s_and_orjson_s(x) -> None:
     if math.isfinite(x):
         assert _c.rounded(x) == round(x, 6) and math.copysign(1.0, _c.rounded(x)) == math.copysign(1.0, round(x, 6))
         assert _c.number(x) == orjson.dumps(x)
+        assert _c.rounded_number(x) == orjson.dumps(round(x, 6))  # the scores' and contributors' numbers
     else:
-        assert _c.number(x) is None
+        assert _c.number(x) is None and _c.rounded_number(x) is None
 
 
 def test_the_c_encoder_takes_the_common_messages_and_hands_back_the_rest() -> None:
