@@ -288,31 +288,25 @@ done:
     return result;
 }
 
-/* number(x) -> bytes or None: one float written as the message writes a threshold (for the probe and the tests). */
-static PyObject *number(PyObject *module, PyObject *arg) {
-    double x = PyFloat_AsDouble(arg);
-    if (x == -1.0 && PyErr_Occurred()) return NULL;
-    char stack[64];
-    Out o = {stack, stack, 0, sizeof stack};
-    int rc = put_double(&o, x);
-    PyObject *result = rc > 0 ? PyBytes_FromStringAndSize(o.buf, o.len) : rc == 0 ? Py_NewRef(Py_None) : NULL;
-    if (o.buf != stack) PyMem_Free(o.buf);
-    return result;
-}
-
-/* rounded_number(x) -> bytes or None: round(x, 6) written as the message writes a score or a contributor's
- * number (for the probe and the tests). */
-static PyObject *rounded_number(PyObject *module, PyObject *arg) {
+/* One float through `put` (put_double or put_rounded_double) as bytes, None where it is not finite. */
+static PyObject *written(PyObject *arg, int (*put_one)(Out *, double)) {
     double x = PyFloat_AsDouble(arg);
     if (x == -1.0 && PyErr_Occurred()) return NULL;
     if (!isfinite(x)) Py_RETURN_NONE;
     char stack[64];
     Out o = {stack, stack, 0, sizeof stack};
-    int rc = put_rounded_double(&o, x);
+    int rc = put_one(&o, x);
     PyObject *result = rc > 0 ? PyBytes_FromStringAndSize(o.buf, o.len) : rc == 0 ? Py_NewRef(Py_None) : NULL;
     if (o.buf != stack) PyMem_Free(o.buf);
     return result;
 }
+
+/* number(x) -> bytes or None: one float written as the message writes a threshold (for the probe and the tests). */
+static PyObject *number(PyObject *module, PyObject *arg) { return written(arg, put_double); }
+
+/* rounded_number(x) -> bytes or None: round(x, 6) written as the message writes a score or a contributor's
+ * number (for the probe and the tests). */
+static PyObject *rounded_number(PyObject *module, PyObject *arg) { return written(arg, put_rounded_double); }
 
 /* rounded(x) -> float: Python's round(x, 6), as the message computes it. */
 static PyObject *rounded(PyObject *module, PyObject *arg) {
