@@ -281,7 +281,9 @@ class ServiceModel:
         tree_raw = None  # the trees' score of this window, once computed (learning reuses it)
         kind = self.kind
         if kind == "combined":
-            p = min(1.0, scorable * p_min)
+            # No scorable feature is no evidence (p = 1), not certainty: ``0 * p_min`` would read as
+            # a score of 1.0 on a service's first windows and on a window of metrics never seen before.
+            p = min(1.0, scorable * p_min) if scorable else 1.0
             raw = tail_deviate(0.5 * p_min)
             path = self._tree_path(names, evidence)
             if path is not None:
@@ -295,8 +297,8 @@ class ServiceModel:
         elif self._trees is None:
             # Baseline kinds: each feature's own tail probability, Bonferroni-corrected for the
             # number of features compared (the window is as rare as its rarest feature, times
-            # the number of chances it had to be that rare).
-            p = min(1.0, scorable * p_min)
+            # the number of chances it had to be that rare); none scorable: no evidence.
+            p = min(1.0, scorable * p_min) if scorable else 1.0
             raw = tail_deviate(0.5 * p_min)
         else:
             path = self._tree_path(names, evidence)

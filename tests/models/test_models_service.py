@@ -244,3 +244,20 @@ def test_settings_round_trip_and_defaults() -> None:
     assert MODEL_KINDS == ("half_space_trees", "adaptive_baseline", "combined")
     with pytest.raises(SettingsError):
         ModelSettings.from_dict({"window": 5})
+
+
+@ALL_KINDS
+def test_a_window_without_evidence_scores_nothing(kind: str) -> None:
+    # A service's first windows (no spread known yet) and a window of metrics never seen before
+    # carry no evidence: their tail probability is 1, the score 0 -- not 1.0, which a consumer
+    # alerting on the score topic would read as certainty.
+    model = build_model("ticket-api", settings(kind, warm_up=0))
+    first = [model.assess({"latency_ms": 200.0 + i}, at=1772409600.0 + 300.0 * i) for i in range(2)]
+    assert [r.score for r in first] == [0.0, 0.0]
+    if kind == "half_space_trees":
+        return  # this kind's score is the trees' own, which see a missing metric at its prediction
+    for i in range(2, 200):
+        model.assess({"latency_ms": 200.0 + i % 5}, at=1772409600.0 + 300.0 * i)
+    fresh = model.assess({"queue_depth": 3.0}, at=1772409600.0 + 300.0 * 200)
+    assert fresh.score == 0.0 and not fresh.anomalous
+    assert model.assess({}, at=1772409600.0 + 300.0 * 201).score == 0.0
