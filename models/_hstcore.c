@@ -1,7 +1,7 @@
 /* The inner loops of half-space trees (models/hst.py) as plain C loops: the padded split rule of a build
  * (HalfSpaceTrees._draw_padded), the walk of one vector down every tree (HalfSpaceTrees._path; squash_walk also
  * builds the service model's squashed vector first, HalfSpaceTrees._squashed_path), and one window's masses and
- * calibration history (score_path, learn_path, history_learn).
+ * calibration history (score_path, learn_path, history_learn, tail_rank).
  *
  * The build.
  * The numpy form draws one level of every tree at a time, about fifteen array operations a level on arrays
@@ -476,6 +476,50 @@ static PyObject *learn_path(PyObject *module, PyObject *args) {
     Py_RETURN_NONE;
 }
 
+/* tail_rank(sorted, size, raw, min_history, tail_min, tail_share) -> float | None: TailCalibrator.p_value
+ * (models/calibration.py) where it is a rank: 1.0 below min_history values, the empirical (above + 1) / (n + 1)
+ * at or below the tail level, None beyond it (the exponential tail's fit is numpy's mean of the top values, left
+ * to the Python code so its rounding is numpy's). The same comparisons as searchsorted "left" find the same
+ * count, and both integers are exact in a double, so the division rounds as Python's int / int does. */
+static PyObject *tail_rank(PyObject *module, PyObject *args) {
+    PyObject *o_sorted;
+    Py_ssize_t size, min_history, tail_min;
+    double raw, tail_share;
+    if (!PyArg_ParseTuple(args, "Ondnnd", &o_sorted, &size, &raw, &min_history, &tail_min, &tail_share))
+        return NULL;
+    if (isnan(raw)) {
+        PyErr_SetString(PyExc_ValueError, "cannot calibrate a NaN raw score");
+        return NULL;
+    }
+    if (size < min_history) return PyFloat_FromDouble(1.0);
+    Py_buffer vs;
+    if (PyObject_GetBuffer(o_sorted, &vs, PyBUF_C_CONTIGUOUS | PyBUF_FORMAT) < 0) return NULL;
+    if (vs.itemsize != 8 || strcmp(vs.format ? vs.format : "B", "d") != 0 || size < 1 || size > vs.len / 8) {
+        PyErr_SetString(PyExc_ValueError, "sorted must be contiguous float64 holding at least size >= 1 values");
+        PyBuffer_Release(&vs);
+        return NULL;
+    }
+    const double *s = vs.buf;
+    Py_ssize_t n = size;
+    Py_ssize_t k = (Py_ssize_t)(tail_share * (double)n); /* int(): truncation, n > 0 */
+    if (k < tail_min) k = tail_min;
+    if (k > n - 1) k = n - 1;
+    if (k < 0) k = 0; /* n == 1 with a negative tail_min: as Python, u = s[n - k - 1] must stay inside */
+    double u = s[n - k - 1];
+    if (!(raw <= u)) {
+        PyBuffer_Release(&vs);
+        Py_RETURN_NONE;
+    }
+    Py_ssize_t lo = 0, hi = n; /* first index with s[i] >= raw */
+    while (lo < hi) {
+        Py_ssize_t mid = lo + (hi - lo) / 2;
+        if (s[mid] < raw) lo = mid + 1;
+        else hi = mid;
+    }
+    PyBuffer_Release(&vs);
+    return PyFloat_FromDouble((double)(n - lo + 1) / (double)(n + 1));
+}
+
 static PyMethodDef hstcore_functions[] = {
     {"draw_padded", draw_padded, METH_VARARGS,
      "draw_padded(draws, low, high, trees, height, padding, feature_out, threshold_out): the padded rule's "
@@ -488,6 +532,9 @@ static PyMethodDef hstcore_functions[] = {
      "path_out): the walk of the squashed vector of HalfSpaceTrees._squashed_path, into path_out."},
     {"history_learn", history_learn, METH_VARARGS,
      "history_learn(sorted, ring, size, head, raw) -> (size, head): EmpiricalCalibrator.learn in place."},
+    {"tail_rank", tail_rank, METH_VARARGS,
+     "tail_rank(sorted, size, raw, min_history, tail_min, tail_share) -> float | None: TailCalibrator.p_value "
+     "where it is a rank; None beyond the tail level."},
     {"learn_path", learn_path, METH_VARARGS,
      "learn_path(l_mass, path, trees, height): one window's path counted in the latest masses, in place."},
     {"score_path", score_path, METH_VARARGS,

@@ -41,10 +41,13 @@ try:
     # scores it calibrates): the same arrays bit for bit; absent without a C compiler at install, off with
     # TIDEWATCH_PURE_PYTHON=1.
     from models._hstcore import history_learn as _c_history_learn
+    # TailCalibrator.p_value where it is a rank (the bulk of the history), the same value; beyond the tail level
+    # it answers None and the Python code fits the tail.
+    from models._hstcore import tail_rank as _c_tail_rank
 except ImportError:  # pragma: no cover - depends on the install
-    _c_history_learn = None
+    _c_history_learn = _c_tail_rank = None
 if PURE_PYTHON:
-    _c_history_learn = None
+    _c_history_learn = _c_tail_rank = None
 
 __all__ = ["PAIR_DEPENDENCE", "SCORE_POWER", "EmpiricalCalibrator", "TailCalibrator", "pair_tail",
            "surprise_score"]
@@ -276,6 +279,10 @@ class TailCalibrator:
             raise ModelError("cannot calibrate a NaN raw score")
         cal = self._cal
         n = cal._size
+        if _c_tail_rank is not None:
+            p = _c_tail_rank(cal._sorted, n, raw, MIN_HISTORY, TAIL_MIN, TAIL_SHARE)
+            if p is not None:
+                return p
         if n < MIN_HISTORY:
             return 1.0
         s = cal._sorted[:n]

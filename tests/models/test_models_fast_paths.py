@@ -264,6 +264,44 @@ def test_the_c_history_learn_keeps_the_python_learn_s_arrays_bit_for_bit(capacit
     assert fast._size == capacity
 
 
+@pytest.mark.parametrize("capacity", [1, 20, 25, 1000])
+def test_the_c_tail_rank_gives_the_python_p_value(capacity: int, monkeypatch) -> None:
+    from models import calibration
+    from models.calibration import TailCalibrator
+
+    if calibration._c_tail_rank is None:
+        pytest.skip("built without the C extension")
+    c_rank = calibration._c_tail_rank
+    cal = TailCalibrator(capacity)
+    rng = np.random.default_rng(capacity)
+    # Ties and their neighbours (where "at or below the tail level" and the search's side decide), values far
+    # beyond the tail (the Python fit), below everything, and short histories (p = 1).
+    history = np.concatenate([np.round(rng.normal(size=2 * capacity + 60), 1), [1.5] * 40, rng.exponential(size=80)])
+    asked = 0
+    for raw in history.tolist():
+        probes = [raw, math.nextafter(raw, math.inf), math.nextafter(raw, -math.inf), -1e9, 1e9, 0.0, -0.0,
+                  float(rng.normal(scale=3.0))]
+        if len(cal):
+            top = float(cal._cal._sorted[len(cal) - 1])
+            probes += [top, math.nextafter(top, math.inf)]
+        for probe in probes:
+            monkeypatch.setattr(calibration, "_c_tail_rank", c_rank)
+            fast = cal.p_value(probe)
+            monkeypatch.setattr(calibration, "_c_tail_rank", None)
+            assert fast == cal.p_value(probe), (len(cal), probe)
+            asked += 1
+        cal.learn(raw)
+    assert asked > 1000
+    ordered = np.zeros(4)
+    with pytest.raises(ValueError):
+        c_rank(ordered, 5, 0.0, 1, 1, 0.1)  # more values than the array holds
+    with pytest.raises(ValueError):
+        c_rank(np.zeros(4, dtype=np.float32), 2, 0.0, 1, 1, 0.1)
+    with pytest.raises(ValueError):
+        c_rank(ordered, 2, float("nan"), 1, 1, 0.1)
+    assert c_rank(ordered, 2, 0.0, 20, 10, 0.1) == 1.0  # a short history: nothing is surprising
+
+
 def test_the_c_learn_path_counts_the_masses_numpy_counts(monkeypatch) -> None:
     from models import hst
 
@@ -365,7 +403,7 @@ def test_the_whole_model_scores_the_same_with_and_without_the_c_loops(seed: int,
     fast, fast_model = _run_model(items)
     for module, names in ((seasonal, ("_c_compare", "_c_update_loop", "_c_learn_evidence")),
                           (hst, ("_c_draw_padded", "_c_learn_path", "_c_score_path", "_c_squash_walk", "_c_walk")),
-                          (calibration, ("_c_history_learn",)), (service_model, ("_c_summarise",))):
+                          (calibration, ("_c_history_learn", "_c_tail_rank")), (service_model, ("_c_summarise",))):
         for name in names:
             monkeypatch.setattr(module, name, None)
     slow, slow_model = _run_model(items)
