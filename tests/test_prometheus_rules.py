@@ -108,6 +108,11 @@ MUTATIONS = [
     ("TidewatchServiceUnusualSustained", ">= 0.6", ">= 0.5"),
     # a warming-up service with a high score would fire
     ("TidewatchServiceExtremelyUnusual", " and tidewatch_service_anomalous == 1", ""),
+    # a service quiet for eight hours (retired) would fire
+    ("TidewatchServiceQuiet", "< 21600", "< 1e12"),
+    # a service exported by two instances while it moves would be judged by the stale copy
+    ("TidewatchServiceQuiet", "- max by (service) (tidewatch_service_window_end_seconds)) > 900",
+     "- min by (service) (tidewatch_service_window_end_seconds)) > 900"),
     # a service exported by two instances would count twice: four distinct services become five
     ("fleet:tidewatch_services_flagged:count", "max by (service) (tidewatch_service_anomalous)", "tidewatch_service_anomalous"),
     # five flagged of fifty-one (9.8%) would count as fleet-wide
