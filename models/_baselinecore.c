@@ -12,6 +12,7 @@
  */
 #define PY_SSIZE_T_CLEAN
 #include <Python.h>
+#include <structmember.h>
 #include <math.h>
 #include <stdint.h>
 #include <string.h>
@@ -88,26 +89,74 @@ static inline double as_double(PyObject *o) {
 /* Entry i of a list of floats (PyFloat_AsDouble sets an error for anything else). */
 #define FV(k, i) as_double(PyList_GET_ITEM(fl[k], (i)))
 
-/* A new Evidence without running its Python __init__: object.__new__, then each slot set. */
-static PyObject *evidence(PyObject *cls, double expected, double z, double change, double stuck, int scorable,
-                          double p, double drift, int held) {
-    PyTypeObject *type = (PyTypeObject *)cls;
-    PyObject *obj = type->tp_alloc(type, 0);
-    if (obj == NULL) return NULL;
-    PyObject *vals[8] = {PyFloat_FromDouble(expected), PyFloat_FromDouble(z), PyFloat_FromDouble(change),
-                         PyFloat_FromDouble(stuck), PyBool_FromLong(scorable), PyFloat_FromDouble(p),
-                         PyFloat_FromDouble(drift), PyBool_FromLong(held)};
-    PyObject *keys[8] = {s_expected, s_z, s_change, s_stuck, s_scorable, s_p, s_drift, s_held};
-    int failed = 0;
-    for (int k = 0; k < 8; k++) {
-        if (!failed && (vals[k] == NULL || PyObject_SetAttr(obj, keys[k], vals[k]) < 0)) failed = 1;
+/* Where a dataclass(slots=True) instance keeps its fields: each field is a member descriptor holding an object
+ * at a byte offset of the instance. A map holds those offsets, in field order, for the one class seen last; an
+ * instance of exactly that class has its fields read and written at them, as the descriptors themselves do,
+ * without looking the attribute up through the type each time. Any other object goes through the attribute
+ * protocol. Two maps: Evidence (built by compare, read by summarise and learn_evidence) and Contribution. */
+typedef struct {
+    PyTypeObject *type;
+    int n;
+    PyObject **keys;
+    Py_ssize_t off[8];
+} SlotMap;
+
+static PyObject *ev_names[8], *contrib_names[4];
+static SlotMap ev_map = {NULL, 8, ev_names, {0}}, contrib_map = {NULL, 4, contrib_names, {0}};
+
+/* 1 when `type`'s fields are plain object slots (their offsets now in the map), 0 when not, -1 on error. */
+static int map_slots(SlotMap *map, PyTypeObject *type) {
+    if (type == map->type) return 1;
+    Py_ssize_t off[8];
+    for (int k = 0; k < map->n; k++) {
+        PyObject *d = PyDict_GetItemWithError(type->tp_dict, map->keys[k]);
+        if (d == NULL) return PyErr_Occurred() ? -1 : 0;
+        if (!Py_IS_TYPE(d, &PyMemberDescr_Type)) return 0;
+        PyMemberDef *m = ((PyMemberDescrObject *)d)->d_member;
+        if (m->type != T_OBJECT_EX || (m->flags & READONLY) || m->offset <= 0 ||
+            m->offset + (Py_ssize_t)sizeof(PyObject *) > type->tp_basicsize)
+            return 0;
+        off[k] = m->offset;
+    }
+    memcpy(map->off, off, sizeof(Py_ssize_t) * (size_t)map->n);
+    Py_INCREF(type);
+    Py_XSETREF(map->type, type);
+    return 1;
+}
+
+/* A new instance of `type` with its fields set to `vals` (references stolen, NULL for a failed allocation). */
+static PyObject *new_slotted(SlotMap *map, PyTypeObject *type, PyObject **vals) {
+    int direct = map_slots(map, type);
+    PyObject *obj = direct < 0 ? NULL : type->tp_alloc(type, 0);
+    int failed = obj == NULL;
+    for (int k = 0; k < map->n; k++) {
+        if (vals[k] == NULL) {
+            failed = 1;
+        } else if (!failed && direct) {
+            /* A fresh object's slots are empty: the reference moves in. */
+            *(PyObject **)((char *)obj + map->off[k]) = vals[k];
+            continue;
+        } else if (!failed && PyObject_SetAttr(obj, map->keys[k], vals[k]) < 0) {
+            failed = 1;
+        }
         Py_XDECREF(vals[k]);
     }
     if (failed) {
-        Py_DECREF(obj);
+        Py_XDECREF(obj);
         return NULL;
     }
     return obj;
+}
+
+#define EV_SLOT(obj, k) ((PyObject **)((char *)(obj) + ev_map.off[k]))
+
+/* A new Evidence without running its Python __init__: object.__new__, then each slot set. */
+static PyObject *evidence(PyObject *cls, double expected, double z, double change, double stuck, int scorable,
+                          double p, double drift, int held) {
+    PyObject *vals[8] = {PyFloat_FromDouble(expected), PyFloat_FromDouble(z), PyFloat_FromDouble(change),
+                         PyFloat_FromDouble(stuck), PyBool_FromLong(scorable), PyFloat_FromDouble(p),
+                         PyFloat_FromDouble(drift), PyBool_FromLong(held)};
+    return new_slotted(&ev_map, (PyTypeObject *)cls, vals);
 }
 
 /* Row i of a profile (array('d') or array('H') of `width` entries), as a buffer; writable for the update. */
@@ -663,8 +712,19 @@ enum { L_XR, L_XW, L_XN, L_XE, L_YR, L_YW, L_YN, L_YE, L_EZ, L_EZ2, L_EZW, N_LEA
 static PyObject *learn_keys[N_LEARN];
 
 /* One attribute of an Evidence as a double (-1.0 with an error set when it is not a number). */
+/* The slot of field `name` of an instance of exactly the class ev_slots mapped (a borrowed reference, NULL where
+ * the slot is empty or the object is another kind: the attribute protocol then reads it, and raises). */
+static inline PyObject *ev_borrow(PyObject *ev, PyObject *name) {
+    if (ev_map.type == NULL || !Py_IS_TYPE(ev, ev_map.type)) return NULL;
+    for (int k = 0; k < 8; k++)
+        if (ev_names[k] == name) return *EV_SLOT(ev, k);
+    return NULL;
+}
+
 static double ev_double(PyObject *ev, PyObject *name) {
-    PyObject *v = PyObject_GetAttr(ev, name);
+    PyObject *v = ev_borrow(ev, name);
+    if (v != NULL) return as_double(v);
+    v = PyObject_GetAttr(ev, name);
     if (v == NULL) return -1.0;
     double d = as_double(v);
     Py_DECREF(v);
@@ -672,7 +732,9 @@ static double ev_double(PyObject *ev, PyObject *name) {
 }
 
 static int ev_flag(PyObject *ev, PyObject *name) {
-    PyObject *v = PyObject_GetAttr(ev, name);
+    PyObject *v = ev_borrow(ev, name);
+    if (v != NULL) return PyObject_IsTrue(v);
+    v = PyObject_GetAttr(ev, name);
     if (v == NULL) return -1;
     int t = PyObject_IsTrue(v);
     Py_DECREF(v);
@@ -851,6 +913,48 @@ done:
     return result;
 }
 
+/* contributions(Contribution, names, values, evidence, order) -> list: ServiceModel.assess's
+ * [Contribution(names[i], values[i], evidence[i].expected, evidence[i].z) for i in order], the very same objects in
+ * each field. */
+static PyObject *contributions(PyObject *module, PyObject *const *args, Py_ssize_t nargs) {
+    if (nargs != 5) {
+        PyErr_SetString(PyExc_TypeError, "contributions(Contribution, names, values, evidence, order)");
+        return NULL;
+    }
+    PyObject *cls = args[0], *names = args[1], *values = args[2], *evs = args[3], *order = args[4];
+    if (!PyType_Check(cls) || !PyList_CheckExact(names) || !PyList_CheckExact(values) || !PyList_CheckExact(evs) ||
+        !PyList_CheckExact(order) || PyList_GET_SIZE(values) != PyList_GET_SIZE(names) ||
+        PyList_GET_SIZE(evs) != PyList_GET_SIZE(names)) {
+        PyErr_SetString(PyExc_TypeError, "Contribution: a class; names, values and evidence: lists of one length; "
+                                         "order: a list");
+        return NULL;
+    }
+    Py_ssize_t m = PyList_GET_SIZE(order), n = PyList_GET_SIZE(names);
+    PyObject *out = PyList_New(m);
+    if (out == NULL) return NULL;
+    for (Py_ssize_t j = 0; j < m; j++) {
+        Py_ssize_t i = PyLong_AsSsize_t(PyList_GET_ITEM(order, j));
+        if (i == -1 && PyErr_Occurred()) goto fail;
+        if (i < 0 || i >= n) {
+            PyErr_SetString(PyExc_IndexError, "contributor position out of range");
+            goto fail;
+        }
+        PyObject *ev = PyList_GET_ITEM(evs, i);
+        PyObject *expected = ev_borrow(ev, s_expected), *z = ev_borrow(ev, s_z);
+        expected = expected != NULL ? Py_NewRef(expected) : PyObject_GetAttr(ev, s_expected);
+        z = z != NULL ? Py_NewRef(z) : expected == NULL ? NULL : PyObject_GetAttr(ev, s_z);
+        PyObject *vals[4] = {Py_NewRef(PyList_GET_ITEM(names, i)), Py_NewRef(PyList_GET_ITEM(values, i)),
+                             expected, z};
+        PyObject *c = new_slotted(&contrib_map, (PyTypeObject *)cls, vals);
+        if (c == NULL) goto fail;
+        PyList_SET_ITEM(out, j, c);
+    }
+    return out;
+fail:
+    Py_DECREF(out);
+    return NULL;
+}
+
 static PyMethodDef baselinecore_functions[] = {
     {"configure", configure, METH_O, "configure(constants): the constants of models.seasonal, once at import."},
     {"compare", (PyCFunction)(void (*)(void))compare, METH_FASTCALL,
@@ -865,6 +969,8 @@ static PyMethodDef baselinecore_functions[] = {
     {"summarise", (PyCFunction)(void (*)(void))summarise, METH_FASTCALL,
      "summarise(evidence, names, k) -> (p_min, scorable, order) or None: the smallest p and the count of the "
      "scorable evidence, and the positions of the k strongest contributors in ServiceModel's order."},
+    {"contributions", (PyCFunction)(void (*)(void))contributions, METH_FASTCALL,
+     "contributions(Contribution, names, values, evidence, order) -> list: the contributors of a window."},
     {NULL, NULL, 0, NULL},
 };
 
@@ -917,6 +1023,12 @@ PyMODINIT_FUNC PyInit__baselinecore(void) {
     NAME(s_p, "p")
     NAME(s_drift, "drift")
     NAME(s_held, "held")
+    NAME(contrib_names[0], "feature")
+    NAME(contrib_names[1], "observed")
+    NAME(contrib_names[2], "expected")
+    NAME(contrib_names[3], "deviation")
 #undef NAME
+    PyObject *ev_fields[8] = {s_expected, s_z, s_change, s_stuck, s_scorable, s_p, s_drift, s_held};
+    memcpy(ev_names, ev_fields, sizeof ev_fields);
     return PyModule_Create(&baselinecore_module);
 }

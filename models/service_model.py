@@ -104,10 +104,12 @@ try:
     # The smallest p, the scorable count and the contributors' order of a window in one C pass
     # (models/_baselinecore.c), the same as ServiceModel._summarise; off with TIDEWATCH_PURE_PYTHON=1.
     from models._baselinecore import summarise as _c_summarise
+    # The window's Contribution list (the same objects in every field), built without each dataclass __init__.
+    from models._baselinecore import contributions as _c_contributions
 except ImportError:  # pragma: no cover - depends on the install
-    _c_summarise = None
+    _c_summarise = _c_contributions = None
 if PURE_PYTHON:
-    _c_summarise = None
+    _c_summarise = _c_contributions = None
 
 __all__ = [
     "Assessment",
@@ -272,7 +274,10 @@ class ServiceModel:
         # The smallest tail probability among the scorable features (the first smallest, as ``min``
         # picks it; 1.0 if none), their count, and the contributors' positions, in one pass.
         p_min, scorable, order = self._summarise(names, evidence) if summary is None else summary
-        contributors = [Contribution(names[i], values[i], evidence[i].expected, evidence[i].z) for i in order]
+        if _c_contributions is not None and type(names) is list and type(values) is list:
+            contributors = _c_contributions(Contribution, names, values, evidence, order)
+        else:
+            contributors = [Contribution(names[i], values[i], evidence[i].expected, evidence[i].z) for i in order]
 
         p = 1.0
         raw = 0.0

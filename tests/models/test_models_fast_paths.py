@@ -302,6 +302,41 @@ def test_the_c_tail_rank_gives_the_python_p_value(capacity: int, monkeypatch) ->
     assert c_rank(ordered, 2, 0.0, 20, 10, 0.1) == 1.0  # a short history: nothing is surprising
 
 
+def test_the_c_contributions_and_evidence_slots_are_the_python_objects() -> None:
+    # The window's contributors built in C hold the very objects the Python comprehension would; Evidence written
+    # and read at its slots' offsets behaves as one made by its own __init__.
+    from models import _baselinecore
+    from models.seasonal import Evidence
+    from models.service_model import Contribution
+
+    names = ["a.mean", "b.mean", "count"]
+    values = [1.5, -2.0, 3.0]
+    evidence = [Evidence(1.0, 0.5, 0.0, 0.0, True, 0.2), Evidence(-1.0, -3.5, 1.0, 0.0, True, 1e-4, 0.3, False),
+                Evidence(math.nan, 0.0, 0.0, 0.0, False)]
+    built = _baselinecore.contributions(Contribution, names, values, evidence, [1, 0])
+    assert built == [Contribution(names[i], values[i], evidence[i].expected, evidence[i].z) for i in (1, 0)]
+    assert all(type(c) is Contribution for c in built)
+    assert built[0].feature is names[1] and built[0].observed is values[1] and built[0].deviation is evidence[1].z
+    built[0].deviation = 9.0  # an ordinary, writable instance
+    assert built[0].deviation == 9.0 and _baselinecore.contributions(Contribution, names, values, evidence, []) == []
+    with pytest.raises(IndexError):
+        _baselinecore.contributions(Contribution, names, values, evidence, [3])
+    with pytest.raises(TypeError):
+        _baselinecore.contributions(Contribution, names, values[:2], evidence, [0])
+
+    class Looser:  # not slotted: every field through the attribute protocol
+        pass
+
+    loose = _baselinecore.contributions(Looser, names, values, evidence, [0])
+    assert (loose[0].feature, loose[0].observed, loose[0].expected, loose[0].deviation) == ("a.mean", 1.5, 1.0, 0.5)
+    with pytest.raises(AttributeError):
+        _baselinecore.summarise([Looser()], ["x"], 1)  # a field it does not have: raised, not read as garbage
+    half = Evidence(1.0, 0.5, 0.0, 0.0, True)
+    del half.p
+    with pytest.raises(AttributeError):
+        _baselinecore.summarise([half], ["x"], 1)  # an empty slot falls back to the attribute protocol, which raises
+
+
 def test_the_c_learn_path_counts_the_masses_numpy_counts(monkeypatch) -> None:
     from models import hst
 
@@ -403,7 +438,7 @@ def test_the_whole_model_scores_the_same_with_and_without_the_c_loops(seed: int,
     fast, fast_model = _run_model(items)
     for module, names in ((seasonal, ("_c_compare", "_c_update_loop", "_c_learn_evidence")),
                           (hst, ("_c_draw_padded", "_c_learn_path", "_c_score_path", "_c_squash_walk", "_c_walk")),
-                          (calibration, ("_c_history_learn", "_c_tail_rank")), (service_model, ("_c_summarise",))):
+                          (calibration, ("_c_history_learn", "_c_tail_rank")), (service_model, ("_c_summarise", "_c_contributions"))):
         for name in names:
             monkeypatch.setattr(module, name, None)
     slow, slow_model = _run_model(items)
